@@ -1,0 +1,246 @@
+"""The `tamis` command line.
+
+Exit codes: 0 done (published), 1 refused by the gate, 2 bad input (one line on stderr says what,
+where and how to fix it).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from importlib import resources
+from pathlib import Path
+
+from pipeline import publish
+from pipeline.errors import BadInput
+
+EXIT_PUBLISHED, EXIT_REFUSED, EXIT_BAD_INPUT = 0, 1, 2
+
+# Prefect settings for a quiet, offline, embedded run; a user's own environment wins.
+PREFECT_DEFAULTS = {
+    "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "120",
+    "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+    "PREFECT_LOGGING_LEVEL": "WARNING",
+    "PREFECT_LOGGING_TO_API_ENABLED": "false",
+}
+
+
+def _prepare_prefect() -> None:
+    for name, value in PREFECT_DEFAULTS.items():
+        os.environ.setdefault(name, value)
+
+
+def _stage_printer(stream=sys.stderr):
+    """Progress on stderr: one line per stage with its elapsed time."""
+
+    def progress(stage: str, event: str, seconds: float) -> None:
+        if event == "done":
+            print(f"  {stage:<9} {seconds:7.1f} s", file=stream, flush=True)
+
+    return progress
+
+
+def _demo_config_path() -> Path:
+    return Path(str(resources.files("configs") / "demo.toml"))
+
+
+def _run_build(config) -> int:
+    _prepare_prefect()
+    from flows.build import build_flow
+
+    started = time.perf_counter()
+    print("building (stage, seconds):", file=sys.stderr)
+    outcome = build_flow(config, progress=_stage_printer())
+    print(summary_text(outcome.report, outcome.folder), end="")
+    print(f"total {time.perf_counter() - started:.1f} s", file=sys.stderr)
+    return EXIT_PUBLISHED if outcome.published else EXIT_REFUSED
+
+
+def summary_text(report: dict, folder: Path) -> str:
+    size, base, held = report["size"], report["baseline"], report["heldout"]
+    status = f"published version {report['version']}" if report["gate"]["passed"] else "REFUSED by the gate"
+    lines = [
+        f"{status}: {folder}",
+        f"  members {report['corpus']['members']:,}, non-members {report['corpus']['non_members']:,}, "
+        f"lookups {report['corpus']['lookups']:,}",
+        f"  size {size['total_bytes']:,} bytes ({size['bits_per_member']:.2f} bits/member; model {size['model_bytes']:,}, "
+        f"filters {size['filter_bytes']:,})",
+        f"  plain Bloom filter at the same target {base['bloom_bytes']:,} bytes: ratio {base['ratio']:.3f}",
+        f"  held-out FPR {held['fpr']:.4%} (upper bound {held['fpr_upper']:.4%} at {held['confidence']:.0%}), "
+        f"target {report['target_fpr']:.4%}",
+        f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
+        f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
+    ]
+    lines += [f"  refused: {reason}" for reason in report["gate"]["reasons"]]
+    return "\n".join(lines) + "\n"
+
+
+def cmd_demo(args) -> int:
+    from pipeline.config import load_config, with_overrides
+    from pipeline.demo import write_demo_corpus
+
+    directory = Path(args.dir).resolve()
+    directory.mkdir(parents=True, exist_ok=True)
+    print(f"writing the Emberfall demo corpus into {directory}", file=sys.stderr)
+    members, lookups = write_demo_corpus(directory, members=args.members, non_members=args.non_members, seed=args.seed)
+    config = load_config(_demo_config_path())
+    config = with_overrides(
+        config,
+        corpus={"members": members, "non_members": lookups},
+        store={"path": directory / "store"},
+    )
+    return _run_build(config)
+
+
+def cmd_build(args) -> int:
+    from pipeline.config import BuildConfig, load_config, with_overrides
+
+    config = load_config(Path(args.config)) if args.config else BuildConfig()
+    config = with_overrides(
+        config,
+        corpus={
+            "members": Path(args.members).resolve() if args.members else None,
+            "non_members": Path(args.non_members).resolve() if args.non_members else None,
+            "key_encoding": args.key_encoding,
+        },
+        target={"fpr": args.target_fpr},
+        store={"path": Path(args.store).resolve() if args.store else None},
+    )
+    return _run_build(config)
+
+
+def _artifact_path(given: str) -> Path:
+    """An artifact file, or a store folder whose CURRENT version is used."""
+    path = Path(given)
+    if path.is_dir():
+        current = publish.current_artifact(path)
+        if current is None:
+            raise BadInput(f"{path} is a folder without a CURRENT version; give an artifact file or a store")
+        return current
+    return path
+
+
+def _open(given: str):
+    from pipeline.loader import FilterLoadError, open_filter
+
+    try:
+        return open_filter(_artifact_path(given))
+    except FilterLoadError as exc:
+        raise BadInput(str(exc)) from None
+
+
+def cmd_lookup(args) -> int:
+    loaded = _open(args.artifact)
+    keys = args.keys if args.keys else [line.rstrip("\r\n") for line in sys.stdin]
+    answers = loaded.contains_many(keys)
+    out = sys.stdout
+    for key, answer in zip(keys, answers):
+        out.write(f"{key}\t{'maybe' if answer else 'no'}\n")
+    return 0
+
+
+def cmd_show(args) -> int:
+    path = _artifact_path(args.artifact)
+    loaded = _open(args.artifact)
+    report_path = path.with_name(publish.REPORT_NAME)
+    print(f"artifact {path} ({path.stat().st_size:,} bytes)")
+    print(json.dumps(loaded.info, indent=2, sort_keys=True, default=str))
+    if report_path.is_file():
+        report = json.loads(report_path.read_text())
+        print(summary_text(report, path.parent), end="")
+        print(f"report: {report_path}")
+    return 0
+
+
+def cmd_versions(args) -> int:
+    store = Path(args.store)
+    current = publish.current_version(store)
+    versions = publish.published_versions(store)
+    if not versions:
+        print(f"{store}: no published versions")
+    for version in versions:
+        report_path = store / str(version) / publish.REPORT_NAME
+        line = f"{'*' if version == current else ' '} {version}"
+        if report_path.is_file():
+            report = json.loads(report_path.read_text())
+            line += f"  {report['built_at']}  {report['size']['total_bytes']:,} bytes  held-out FPR {report['heldout']['fpr']:.4%}"
+        print(line)
+    return 0
+
+
+def cmd_rollback(args) -> int:
+    version = publish.rollback(Path(args.store))
+    print(f"version {version} is current")
+    return 0
+
+
+EXAMPLES = {
+    "demo": "examples:\n  tamis demo\n  tamis demo --dir /tmp/emberfall --members 20000 --non-members 200000",
+    "build": (
+        "examples:\n  tamis build configs/nightly.example.toml\n"
+        "  tamis build --members banned.txt --non-members lookups.parquet --target-fpr 0.01 --store /srv/filters"
+    ),
+    "lookup": "examples:\n  tamis lookup store/3/artifact.tamis someone_42\n  tamis lookup store < handles.txt",
+    "show": "examples:\n  tamis show store\n  tamis show store/3/artifact.tamis",
+    "versions": "example:\n  tamis versions /srv/filters",
+    "rollback": "example:\n  tamis rollback /srv/filters",
+}
+
+
+def make_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="tamis", description="Build and query compact learned membership filters.")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def command(name: str, help_text: str):
+        return sub.add_parser(name, help=help_text, description=help_text, epilog=EXAMPLES.get(name),
+                              formatter_class=argparse.RawDescriptionHelpFormatter)
+
+    demo = command("demo", "write the fictional demo corpus, build, verify, publish, print a summary")
+    demo.add_argument("--dir", default="tamis-demo", help="folder for the corpus and the store (default: ./tamis-demo)")
+    demo.add_argument("--members", type=int, default=200_000, help="banned handles to generate (default 200,000)")
+    demo.add_argument("--non-members", type=int, default=2_000_000, help="distinct looked-up handles (default 2,000,000)")
+    demo.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
+    demo.set_defaults(run=cmd_demo)
+
+    build = command("build", "one rebuild from a TOML config and/or plain options (options override the config)")
+    build.add_argument("config", nargs="?", help="TOML build configuration")
+    build.add_argument("--members", help="members: one key a line, or a table (CSV, Parquet, NDJSON) with a key column")
+    build.add_argument("--non-members", help="non-members: one key a line, or a table with key and optional count columns")
+    build.add_argument("--target-fpr", type=float, help="the false-positive rate to meet, e.g. 0.01")
+    build.add_argument("--store", help="store folder to publish into")
+    build.add_argument("--key-encoding", choices=("utf-8", "bytes"), help="read keys as UTF-8 text (default) or raw bytes")
+    build.set_defaults(run=cmd_build)
+
+    lookup = command("lookup", "answer keys: KEY<TAB>maybe or KEY<TAB>no, in input order")
+    lookup.add_argument("artifact", help="an artifact file, or a store folder (its CURRENT version)")
+    lookup.add_argument("keys", nargs="*", help="keys to look up (default: one a line from stdin)")
+    lookup.set_defaults(run=cmd_lookup)
+
+    show = command("show", "header, sizes, regions, measured FPR and provenance of an artifact")
+    show.add_argument("artifact", help="an artifact file, or a store folder (its CURRENT version)")
+    show.set_defaults(run=cmd_show)
+
+    versions = command("versions", "list the published versions of a store (* marks CURRENT)")
+    versions.add_argument("store")
+    versions.set_defaults(run=cmd_versions)
+
+    rollback = command("rollback", "make the version before CURRENT current again")
+    rollback.add_argument("store")
+    rollback.set_defaults(run=cmd_rollback)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = make_parser().parse_args(argv)
+    try:
+        return args.run(args)
+    except BadInput as exc:
+        print(f"tamis: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,210 @@
+"""Build configuration: plain frozen data read from TOML, checked key by key before anything runs.
+
+A config file has these tables (every key optional unless marked; `configs/demo.toml` shows them all):
+
+    [corpus]   members*, non_members* (paths, relative to the config file), key_encoding, max_key_bytes,
+               conflicts, split_seed, validation_share, heldout_share
+    [target]   fpr*
+    [model]    the fields of pipeline.model.ModelSettings
+    [regions]  the fields of pipeline.regions.RegionSettings
+    [filters]  hash_seed
+    [gate]     the fields of GateSettings
+    [store]    path*, keep
+    [schedule] cron, timezone
+
+An unknown key, a wrong type or a value out of range is a ConfigError that names the key path and
+what is allowed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pipeline.errors import BadInput
+from pipeline.model import ModelSettings
+from pipeline.regions import RegionSettings
+
+
+class ConfigError(BadInput):
+    """A config value that cannot be used; the message names the key path and the allowed values."""
+
+
+@dataclass(frozen=True)
+class CorpusSettings:
+    members: Path | None = None
+    non_members: Path | None = None
+    # "utf-8": keys must be valid UTF-8 text; "bytes": keys are taken as raw bytes
+    key_encoding: str = field(default="utf-8", metadata={"choices": ("utf-8", "bytes")})
+    max_key_bytes: int = field(default=4096, metadata={"range": (1, 1 << 20)})
+    # a key listed as both member and non-member: "member" keeps it a member (it can never be a
+    # false negative) and counts it in the report; "error" refuses the corpus
+    conflicts: str = field(default="member", metadata={"choices": ("member", "error")})
+    split_seed: int = field(default=0x7A31, metadata={"range": (0, (1 << 64) - 1)})
+    validation_share: float = field(default=0.3, metadata={"range": (0.05, 0.9)})
+    heldout_share: float = field(default=0.3, metadata={"range": (0.05, 0.9)})
+
+    def __post_init__(self) -> None:
+        if self.validation_share + self.heldout_share > 0.9:
+            raise ValueError("validation_share + heldout_share must leave at least 0.1 of the non-members for training")
+
+
+@dataclass(frozen=True)
+class TargetSettings:
+    fpr: float = field(default=0.01, metadata={"range": (1e-9, 0.5)})
+
+
+@dataclass(frozen=True)
+class GateSettings:
+    # the confidence of the one-sided upper bound on the held-out false-positive rate
+    confidence: float = field(default=0.95, metadata={"range": (0.5, 0.999999)})
+    # the gate passes while the upper bound is at most target * (1 + fpr_slack)
+    fpr_slack: float = field(default=0.0, metadata={"range": (0.0, 10.0)})
+    # the build aims below the target by this many standard errors of the held-out estimate, on top
+    # of the confidence bound, so that a build on target passes the gate with high probability
+    aim_sigmas: float = field(default=2.0, metadata={"range": (0.0, 10.0)})
+    # 0 means no limit
+    max_artifact_bytes: int = field(default=0, metadata={"range": (0, 1 << 40)})
+
+
+@dataclass(frozen=True)
+class FilterSettings:
+    # seeds the xxh3-128 hash of every backup filter; stored in the artifact, so any value works
+    hash_seed: int = field(default=0x7A3115, metadata={"range": (0, (1 << 64) - 1)})
+
+
+@dataclass(frozen=True)
+class StoreSettings:
+    path: Path | None = None
+    keep: int = field(default=10, metadata={"range": (1, 100_000)})
+
+
+@dataclass(frozen=True)
+class ScheduleSettings:
+    cron: str = "0 2 * * *"
+    timezone: str = "UTC"
+
+
+@dataclass(frozen=True)
+class BuildConfig:
+    corpus: CorpusSettings = CorpusSettings()
+    target: TargetSettings = TargetSettings()
+    model: ModelSettings = ModelSettings()
+    regions: RegionSettings = RegionSettings()
+    filters: FilterSettings = FilterSettings()
+    gate: GateSettings = GateSettings()
+    store: StoreSettings = StoreSettings()
+    schedule: ScheduleSettings = ScheduleSettings()
+
+
+def _coerce(value: Any, annotation: Any, where: str, base: Path) -> Any:
+    """Check `value` against a field's type; paths resolve against the config file's folder."""
+    args = typing.get_args(annotation)
+    if Path in args or annotation is Path:
+        if not isinstance(value, str) or not value:
+            raise ConfigError(f"config key {where} must be a non-empty path string, got {value!r}")
+        return (base / value).resolve()
+    if annotation is bool:
+        if not isinstance(value, bool):
+            raise ConfigError(f"config key {where} must be true or false, got {value!r}")
+        return value
+    if annotation is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"config key {where} must be an integer, got {value!r}")
+        return value
+    if annotation is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise ConfigError(f"config key {where} must be a finite number, got {value!r}")
+        return float(value)
+    if annotation is str:
+        if not isinstance(value, str):
+            raise ConfigError(f"config key {where} must be a string, got {value!r}")
+        return value
+    origin = typing.get_origin(annotation)
+    if origin is tuple:
+        if not isinstance(value, list) or not value:
+            raise ConfigError(f"config key {where} must be a non-empty list, got {value!r}")
+        inner = args[0]
+        return tuple(_coerce(v, inner, f"{where}[{i}]", base) for i, v in enumerate(value))
+    raise ConfigError(f"config key {where} has a type this reader does not know ({annotation})")
+
+
+def _check_limits(value: Any, meta: typing.Mapping, where: str) -> None:
+    if "range" in meta:
+        low, high = meta["range"]
+        if not low <= value <= high:
+            raise ConfigError(f"config key {where} must be between {low} and {high}, got {value!r}")
+    if "choices" in meta and value not in meta["choices"]:
+        allowed = ", ".join(repr(c) for c in meta["choices"])
+        raise ConfigError(f"config key {where} must be one of {allowed}, got {value!r}")
+
+
+def _build_section(cls: type, table: Any, where: str, base: Path) -> Any:
+    if not isinstance(table, dict):
+        raise ConfigError(f"config key {where} must be a table, got {table!r}")
+    hints = typing.get_type_hints(cls)
+    fields = {f.name: f for f in dataclasses.fields(cls)}
+    values = {}
+    for name, value in table.items():
+        if name not in fields:
+            allowed = ", ".join(sorted(fields))
+            raise ConfigError(f"unknown config key {where}.{name} (allowed in [{where}]: {allowed})")
+        values[name] = _coerce(value, hints[name], f"{where}.{name}", base)
+        _check_limits(values[name], fields[name].metadata, f"{where}.{name}")
+    try:
+        return cls(**values)
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"config table [{where}]: {exc}") from None
+
+
+def config_from_dict(raw: dict, base: Path) -> BuildConfig:
+    """A BuildConfig from a parsed TOML document; relative paths resolve against `base`."""
+    sections = {f.name: f.type for f in dataclasses.fields(BuildConfig)}
+    hints = typing.get_type_hints(BuildConfig)
+    built = {}
+    for name, table in raw.items():
+        if name not in sections:
+            raise ConfigError(f"unknown config table [{name}] (allowed: {', '.join(sections)})")
+        built[name] = _build_section(hints[name], table, name, base)
+    return BuildConfig(**built)
+
+
+def load_config(path: Path) -> BuildConfig:
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(f"cannot read config {path}: {exc.strerror}; check the path") from None
+    except UnicodeDecodeError:
+        raise ConfigError(f"config {path} is not UTF-8 text") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"config {path} is not valid TOML: {exc}") from None
+    return config_from_dict(raw, path.parent)
+
+
+def with_overrides(config: BuildConfig, **sections: dict) -> BuildConfig:
+    """A copy of `config` with some fields of some sections replaced (the CLI's plain options)."""
+    changes = {}
+    for name, fields in sections.items():
+        given = {k: v for k, v in fields.items() if v is not None}
+        if given:
+            section = getattr(config, name)
+            for key, value in given.items():
+                _check_limits(value, {f.name: f for f in dataclasses.fields(section)}[key].metadata, f"{name}.{key}")
+            changes[name] = dataclasses.replace(section, **given)
+    return dataclasses.replace(config, **changes)
+
+
+def require_paths(config: BuildConfig) -> None:
+    """The three paths a build cannot run without."""
+    for where, value in (("corpus.members", config.corpus.members), ("corpus.non_members", config.corpus.non_members), ("store.path", config.store.path)):
+        if value is None:
+            option = "--" + where.split(".")[1].replace("_", "-")
+            option = "--store" if where == "store.path" else option
+            raise ConfigError(f"no {where} given: set it in the config or pass {option}")

@@ -1,0 +1,65 @@
+"""Provenance of a build: when, from what corpus and config, by which tool version.
+
+The build time is SOURCE_DATE_EPOCH when it is set (the reproducible-builds convention, common
+practice), so the same corpus, config and seed give a byte-identical artifact (invariant 6).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import json
+import os
+from importlib.metadata import PackageNotFoundError, version
+from pathlib import Path
+
+import xxhash
+
+from pipeline.config import BuildConfig
+from pipeline.corpus import Corpus
+
+
+def tool_version() -> str:
+    try:
+        return version("tamis")
+    except PackageNotFoundError:
+        return "0+unknown"
+
+
+def build_time() -> dt.datetime:
+    epoch = os.environ.get("SOURCE_DATE_EPOCH")
+    if epoch is not None:
+        return dt.datetime.fromtimestamp(int(epoch), tz=dt.timezone.utc)
+    return dt.datetime.now(tz=dt.timezone.utc).replace(microsecond=0)
+
+
+def corpus_digest(corpus: Corpus) -> str:
+    """xxh3-128 of every key and count, members first, then each non-member part in order."""
+    digest = xxhash.xxh3_128()
+    digest.update(b"\n".join(corpus.members))
+    for part in (corpus.train, corpus.validation, corpus.heldout):
+        digest.update(b"\x00" + b"\n".join(part.keys))
+        digest.update(part.counts.astype("<i8").tobytes())
+    return digest.hexdigest()
+
+
+def config_digest(config: BuildConfig) -> str:
+    """xxh3-128 of the settings that shape the artifact; file paths are left out, so moving a
+    corpus or a store does not change the artifact's bytes."""
+    settings = dataclasses.asdict(config)
+    for section, key in (("corpus", "members"), ("corpus", "non_members"), ("store", "path")):
+        settings[section].pop(key)
+    text = json.dumps(settings, sort_keys=True, default=lambda v: str(v) if isinstance(v, Path) else list(v))
+    return xxhash.xxh3_128_hexdigest(text.encode())
+
+
+def build_provenance(config: BuildConfig, corpus: Corpus) -> dict:
+    built = build_time()
+    corpus_id = corpus_digest(corpus)
+    return {
+        "built_at": built.isoformat().replace("+00:00", "Z"),
+        "build_id": f"{built:%Y%m%dT%H%M%SZ}-{corpus_id[:8]}",
+        "corpus_digest": corpus_id,
+        "config_digest": config_digest(config),
+        "tool_version": tool_version(),
+    }

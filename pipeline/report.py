@@ -1,0 +1,84 @@
+"""The build report (`report.json` beside each artifact): what was built, how big, how good, and
+why the gate decided as it did. Field names follow the contract in the design notes (§4)."""
+
+from __future__ import annotations
+
+import math
+
+from pipeline.bloom import bloom_bits, lower_bound_bits
+from pipeline.config import BuildConfig
+from pipeline.corpus import Corpus
+from pipeline.verify import Verification
+
+
+def _region_rows(plan, filters) -> list[dict]:
+    bounds = [None, *(int(b) for b in plan.boundaries), None]
+    return [
+        {
+            "score_from": bounds[i],
+            "score_to": bounds[i + 1],
+            "members": int(plan.member_counts[i]),
+            "nonmember_share": float(plan.nonmember_shares[i]),
+            "fpr": float(plan.fprs[i]),
+            "mode": region.mode,
+            "filter_bytes": region.nbytes,
+        }
+        for i, region in enumerate(filters)
+    ]
+
+
+def build_report(
+    *,
+    config: BuildConfig,
+    corpus: Corpus,
+    provenance: dict,
+    aim_fpr: float,
+    choice,
+    plan,
+    filters,
+    verification: Verification,
+    total_bytes: int,
+    reasons: list[str],
+    version: int | None,
+    timings: dict,
+) -> dict:
+    members = len(corpus.members)
+    target = config.target.fpr
+    bloom_bytes = math.ceil(bloom_bits(members, target) / 8)
+    non_members = len(corpus.train.keys) + len(corpus.validation.keys) + len(corpus.heldout.keys)
+    lookups = corpus.train.lookups + corpus.validation.lookups + corpus.heldout.lookups
+    return {
+        "version": version,
+        "build_id": provenance["build_id"],
+        "built_at": provenance["built_at"],
+        "provenance": provenance,
+        "target_fpr": target,
+        "aim_fpr": aim_fpr,
+        "corpus": {
+            "members": members,
+            "non_members": non_members,
+            "lookups": lookups,
+            "has_counts": corpus.has_counts,
+            "split": {part: len(getattr(corpus, part).keys) for part in ("train", "validation", "heldout")},
+            **corpus.stats,
+        },
+        "heldout": verification.heldout.as_report(),
+        "false_negatives": verification.false_negatives,
+        "size": {
+            "total_bytes": total_bytes,
+            "model_bytes": choice.forest.nbytes,
+            "filter_bytes": sum(f.nbytes for f in filters),
+            "bits_per_member": total_bytes * 8 / members,
+        },
+        "baseline": {
+            "bloom_bytes": bloom_bytes,
+            "ratio": total_bytes / bloom_bytes if bloom_bytes else None,
+            "lower_bound_bytes": lower_bound_bits(members, target) / 8,
+        },
+        "separation": {"kl_bits": plan.kl_bits, "auc": choice.auc},
+        "model": {"trees": choice.trees, "params": choice.params, "candidates": choice.candidates},
+        "regions": _region_rows(plan, filters),
+        "expected_fpr": plan.expected_fpr,
+        "gate": {"passed": not reasons, "reasons": reasons},
+        "timings": timings,
+    }
