@@ -1,0 +1,62 @@
+"""Verify stage's statistics against reference formulas and scipy."""
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from pipeline.corpus import KeySet
+from pipeline.verify import aim_fpr, clopper_pearson_upper, effective_sample_size, measure_fpr, needed_heldout
+
+
+@pytest.mark.parametrize("x, n", [(0, 50), (3, 1000), (120, 10000), (999, 1000)])
+def test_clopper_pearson_upper_matches_scipy_exact_interval(x, n):
+    # scipy's exact (Clopper-Pearson) two-sided interval at 90% has the one-sided 95% bound as its
+    # upper end (scipy.stats.binomtest, SciPy 1.7+; Clopper and Pearson, Biometrika 1934)
+    reference = stats.binomtest(x, n).proportion_ci(confidence_level=0.90, method="exact").high
+    assert clopper_pearson_upper(x, n, 0.95) == pytest.approx(reference, rel=1e-9)
+
+
+def test_zero_successes_follow_the_closed_form():
+    # with x = 0 the bound solves (1 - p)^n = 1 - c, i.e. p = 1 - (1 - c)^(1/n); about 3/n at 95%
+    # ("rule of three", Hanley and Lippman-Hand, JAMA 1983)
+    n = 3000
+    assert clopper_pearson_upper(0, n, 0.95) == pytest.approx(1 - 0.05 ** (1 / n), rel=1e-9)
+    assert clopper_pearson_upper(0, n, 0.95) == pytest.approx(3 / n, rel=0.01)
+    assert needed_heldout(0.01, 0.95) == math.ceil(math.log(0.05) / math.log(0.99)) == 299
+
+
+def test_effective_sample_size_of_equal_and_skewed_weights():
+    assert effective_sample_size(np.ones(500)) == pytest.approx(500)
+    # one weight of 100 among 99 ones: (199)^2 / (10000 + 99)
+    w = np.array([100] + [1] * 99)
+    assert effective_sample_size(w) == pytest.approx(199**2 / 10099)
+
+
+def test_measure_fpr_by_keys_and_by_lookups():
+    heldout = KeySet([b"a", b"b", b"c", b"d"], np.array([10, 1, 1, 8]))
+    answers = np.array([True, False, False, False])
+    by_keys = measure_fpr(answers, heldout, weighted=False, confidence=0.95)
+    assert by_keys.fpr == 0.25 and by_keys.false_positive_keys == 1
+    by_lookups = measure_fpr(answers, heldout, weighted=True, confidence=0.95)
+    assert by_lookups.fpr == pytest.approx(10 / 20) and by_lookups.false_positive_lookups == 10
+    assert by_lookups.fpr_upper > by_lookups.fpr
+
+
+def test_aim_leaves_room_for_the_bound_and_the_noise():
+    aim = aim_fpr(0.01, 300_000, 0.95, 2.0)
+    z = stats.norm.ppf(0.95) + 2.0
+    assert aim + z * math.sqrt(aim * (1 - aim) / 300_000) == pytest.approx(0.01, rel=1e-6)
+    assert 0.009 < aim < 0.01
+    assert aim_fpr(0.01, 1_000, 0.95, 2.0) < aim  # fewer held-out keys: aim lower
+
+
+def test_a_rate_on_target_passes_the_bound_at_about_the_stated_confidence():
+    """Simulated coverage: with the true rate p, the 95% upper bound falls below p about 5% of the
+    time or less (Clopper-Pearson is conservative)."""
+    rng = np.random.default_rng(5)
+    n, p = 20_000, 0.01
+    misses = sum(clopper_pearson_upper(x, n, 0.95) < p for x in rng.binomial(n, p, size=2000))
+    # at most 5%, plus a 4-sigma binomial allowance on 2000 trials
+    assert misses <= 2000 * 0.05 + 4 * math.sqrt(2000 * 0.05 * 0.95)
