@@ -31,10 +31,6 @@ STAGES = ("corpus", "features", "model", "regions", "filters", "package", "verif
 Progress = Callable[[str, str, float], None]
 
 
-def _quiet(stage: str, event: str, seconds: float) -> None:
-    """The default progress sink: say nothing."""
-
-
 @dataclass(frozen=True)
 class BuildOutcome:
     published: bool
@@ -111,8 +107,12 @@ def verify_package(path: Path, corpus, config: BuildConfig) -> verify.Verificati
 
 
 @flow(name="tamis-build", log_prints=False, validate_parameters=False)
-def build_flow(config: BuildConfig, progress: Progress = _quiet) -> BuildOutcome:
-    """Build, verify and (when the gate passes) publish one artifact into the config's store."""
+def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOutcome:
+    """Build, verify and (when the gate passes) publish one artifact into the config's store.
+
+    `progress(stage, event, seconds)` hears "start" and "done" of every stage.
+    """
+    progress = progress or (lambda stage, event, seconds: None)
     require_paths(config)
     store = config.store.path
     timings: dict[str, float] = {}

@@ -90,6 +90,7 @@ def cmd_demo(args) -> int:
     config = with_overrides(
         config,
         corpus={"members": members, "non_members": lookups},
+        target={"fpr": args.target_fpr},
         store={"path": directory / "store"},
     )
     return _run_build(config)
@@ -142,16 +143,40 @@ def cmd_lookup(args) -> int:
     return 0
 
 
+def show_text(path: Path, info: dict, report: dict | None) -> str:
+    """What `tamis show` prints: the header in words, the regions as a table, the report's summary."""
+    provenance = info.get("provenance", {})
+    forest = info.get("forest", {})
+    lines = [
+        f"artifact {path} ({path.stat().st_size:,} bytes), format {info.get('format', '?')}",
+        f"  built {provenance.get('built_at')} by tamis {provenance.get('tool_version')} (build {provenance.get('build_id')})",
+        f"  corpus digest {provenance.get('corpus_digest')}, config digest {provenance.get('config_digest')}",
+        f"  model: {forest.get('trees')} trees over {forest.get('features')} features",
+        "  region  scores from .. to          members  mode   bits        probes  budget",
+    ]
+    bounds = [None, *info.get("boundaries", []), None]
+    for i, region in enumerate(info.get("regions", [])):
+        span = f"{'-inf' if bounds[i] is None else bounds[i]} .. {'+inf' if bounds[i + 1] is None else bounds[i + 1]}"
+        lines.append(
+            f"  {i:<6}  {span:<24} {region['members']:>7}  {region['mode']:<5}  {region['bits']:>10}  {region['hashes']:>6}  {region['fpr_budget']:.3%}"
+        )
+    measured = info.get("measured")
+    if measured:
+        lines.append(
+            f"  measured on {measured['keys']:,} held-out keys: FPR {measured['fpr']:.4%} (upper bound {measured['fpr_upper']:.4%} at {measured['confidence']:.0%})"
+        )
+    text = "\n".join(lines) + "\n"
+    if report is not None:
+        text += summary_text(report, path.parent) + f"report: {path.with_name(publish.REPORT_NAME)}\n"
+    return text
+
+
 def cmd_show(args) -> int:
     path = _artifact_path(args.artifact)
     loaded = _open(args.artifact)
     report_path = path.with_name(publish.REPORT_NAME)
-    print(f"artifact {path} ({path.stat().st_size:,} bytes)")
-    print(json.dumps(loaded.info, indent=2, sort_keys=True, default=str))
-    if report_path.is_file():
-        report = json.loads(report_path.read_text())
-        print(summary_text(report, path.parent), end="")
-        print(f"report: {report_path}")
+    report = json.loads(report_path.read_text()) if report_path.is_file() else None
+    print(show_text(path, loaded.info, report), end="")
     return 0
 
 
@@ -203,6 +228,7 @@ def make_parser() -> argparse.ArgumentParser:
     demo.add_argument("--members", type=int, default=200_000, help="banned handles to generate (default 200,000)")
     demo.add_argument("--non-members", type=int, default=2_000_000, help="distinct looked-up handles (default 2,000,000)")
     demo.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
+    demo.add_argument("--target-fpr", type=float, help="the false-positive rate to meet (default: configs/demo.toml, 1%%)")
     demo.set_defaults(run=cmd_demo)
 
     build = command("build", "one rebuild from a TOML config and/or plain options (options override the config)")
@@ -240,6 +266,10 @@ def main(argv: list[str] | None = None) -> int:
     except BadInput as exc:
         print(f"tamis: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except BrokenPipeError:
+        # the reader of our output went away (`tamis lookup ... | head`): stop quietly, common practice
+        sys.stderr.close()
+        return 0
 
 
 if __name__ == "__main__":

@@ -85,19 +85,21 @@ def measure_fpr(answers: np.ndarray, heldout: KeySet, weighted: bool, confidence
 def aim_fpr(target: float, effective_sample: float, confidence: float, aim_sigmas: float) -> float:
     """The rate to plan for so that a build hitting it passes the gate with high probability.
 
-    A rate f measured on n_eff draws has standard error s = sqrt(f (1 - f) / n_eff); the gate's
-    upper bound sits about z s above the estimate (z the normal quantile of `confidence`), and the
-    estimate itself lands up to `aim_sigmas` s above f. So plan for the largest f with
-    f + (z + aim_sigmas) s <= target, found by bisection (the left side grows with f).
+    On n draws a true rate f gives about f n false positives, and up to x(f) = f n + s sqrt(f (1-f) n)
+    in all but the unluckiest builds (s = `aim_sigmas` standard deviations). Plan for the largest f
+    whose x(f) still has a Clopper-Pearson upper bound at most the target; both sides grow with f, so
+    bisection finds it.
     """
-    z = float(stats.norm.ppf(confidence)) + aim_sigmas
+    n = effective_sample
+
+    def passes(f: float) -> bool:
+        unlucky = f * n + aim_sigmas * math.sqrt(f * (1 - f) * n)
+        return clopper_pearson_upper(unlucky, n, confidence) <= target
+
     low, high = 0.0, target
-    for _ in range(60):
+    for _ in range(50):
         mid = (low + high) / 2
-        if mid + z * math.sqrt(mid * (1 - mid) / effective_sample) <= target:
-            low = mid
-        else:
-            high = mid
+        low, high = (mid, high) if passes(mid) else (low, mid)
     return low
 
 

@@ -1,0 +1,105 @@
+"""End to end through the command line: a small Emberfall demo is built, verified and published,
+then reloaded in a fresh process and queried; a refused build and bad input keep the store as it was."""
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from pipeline import publish
+
+# Small enough for the suite. Lookup counts are heavy-tailed, so 24,000 held-out keys carry the
+# information of only about 500 unweighted draws: a 5% target can be bounded at that size, 1% not.
+MEMBERS, NON_MEMBERS, TARGET = 6000, 80000, "0.05"
+
+
+def tamis(*args: str, stdin: str | None = None, env: dict | None = None) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "pipeline.cli", *args],
+        input=stdin, capture_output=True, text=True, env={**os.environ, **(env or {})}, timeout=600,
+    )
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory) -> Path:
+    directory = tmp_path_factory.mktemp("emberfall")
+    done = tamis("demo", "--dir", str(directory), "--members", str(MEMBERS), "--non-members", str(NON_MEMBERS),
+                 "--target-fpr", TARGET)
+    assert done.returncode == 0, done.stderr
+    assert "published version 1" in done.stdout
+    return directory
+
+
+def _report(demo: Path) -> dict:
+    return json.loads((demo / "store" / "1" / publish.REPORT_NAME).read_text())
+
+
+def test_demo_publishes_a_verified_artifact_that_meets_its_target(demo):
+    report = _report(demo)
+    assert report["gate"] == {"passed": True, "reasons": []}
+    assert report["false_negatives"] == 0
+    assert report["heldout"]["fpr"] <= report["target_fpr"]
+    assert report["heldout"]["fpr_upper"] <= report["target_fpr"]
+    assert report["corpus"]["members"] == MEMBERS
+    assert report["size"]["total_bytes"] == (demo / "store" / "1" / publish.ARTIFACT_NAME).stat().st_size
+    assert report["baseline"]["ratio"] < 1
+    assert report["size"]["total_bytes"] > report["baseline"]["lower_bound_bytes"] * 0  # a real, nonempty file
+    assert sum(r["members"] for r in report["regions"]) == MEMBERS
+    assert set(report["timings"]) >= {"corpus", "features", "model", "regions", "filters", "package", "verify"}
+    assert publish.current_version(demo / "store") == 1
+
+
+_FRESH = """
+import sys
+from pipeline.loader import open_filter
+members = open(sys.argv[2], encoding="utf-8").read().splitlines()
+answers = open_filter(sys.argv[1]).contains_many(members)
+print(int(answers.sum()), len(members))
+"""
+
+
+def test_a_fresh_process_reloads_the_artifact_and_finds_every_member(demo):
+    artifact = demo / "store" / "1" / publish.ARTIFACT_NAME
+    done = subprocess.run([sys.executable, "-c", _FRESH, str(artifact), str(demo / "banned_handles.txt")],
+                          capture_output=True, text=True, check=True)
+    found, total = map(int, done.stdout.split())
+    assert found == total == MEMBERS
+
+
+def test_lookup_answers_every_member_maybe_in_input_order(demo):
+    members = (demo / "banned_handles.txt").read_text(encoding="utf-8").splitlines()
+    done = tamis("lookup", str(demo / "store"), stdin="\n".join(members) + "\n")
+    assert done.returncode == 0, done.stderr
+    lines = done.stdout.splitlines()
+    assert lines == [f"{key}\tmaybe" for key in members]
+
+
+def test_show_prints_regions_and_the_measured_rate(demo):
+    done = tamis("show", str(demo / "store"))
+    assert done.returncode == 0, done.stderr
+    assert "measured on" in done.stdout and "region" in done.stdout and "report:" in done.stdout
+
+
+def test_a_build_the_gate_refuses_keeps_the_current_version(demo, tmp_path):
+    config = tmp_path / "tight.toml"
+    config.write_text("[gate]\nmax_artifact_bytes = 100\n")
+    done = tamis("build", str(config), "--members", str(demo / "banned_handles.txt"),
+                 "--non-members", str(demo / "lookups.parquet"), "--target-fpr", TARGET, "--store", str(demo / "store"))
+    assert done.returncode == 1, done.stderr
+    assert "max_artifact_bytes" in done.stdout
+    assert publish.current_version(demo / "store") == 1
+    refused = list((demo / "store" / "refused").glob("*/report.json"))
+    assert len(refused) == 1
+    assert json.loads(refused[0].read_text())["gate"]["passed"] is False
+
+
+def test_bad_input_exits_2_with_one_line_and_writes_nothing(demo, tmp_path):
+    before = sorted(p.name for p in (demo / "store").iterdir())
+    done = tamis("build", "--members", str(tmp_path / "absent.txt"), "--non-members", str(demo / "lookups.parquet"),
+                 "--target-fpr", "0.01", "--store", str(demo / "store"))
+    assert done.returncode == 2
+    assert done.stderr.strip().count("\n") == 0 and "absent.txt" in done.stderr
+    assert sorted(p.name for p in (demo / "store").iterdir()) == before
