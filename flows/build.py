@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
+from prefect.utilities.annotations import quote
 
 from pipeline import corpus as corpus_stage
 from pipeline import publish, report, verify
@@ -120,7 +121,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
     def run(stage: str, fn, *args):
         progress(stage, "start", 0.0)
         started = time.perf_counter()
-        result = fn(*args)
+        # quote: Prefect would otherwise walk every key of the corpus looking for futures
+        result = fn(*(quote(arg) for arg in args))
         timings[stage] = round(time.perf_counter() - started, 3)
         progress(stage, "done", timings[stage])
         return result

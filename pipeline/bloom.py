@@ -71,7 +71,8 @@ def lower_bound_bits(n: int, fpr: float) -> float:
 # Hashing: every key (bytes) is hashed once with xxh3_128 under the filter's 64-bit seed. The low 64
 # bits of the 128-bit value are a, the high 64 bits are b.
 #
-# Positions (enhanced double hashing, Dillinger and Manolios, FMCAD 2004, exactly as in the paper):
+# Positions (enhanced double hashing, Dillinger and Manolios, FMCAD 2004; the paper's loop as recalled
+# from memory):
 #     x = a mod m;  y = b mod m;  p_0 = x
 #     for i = 1 .. k-1:  x = (x + y) mod m;  y = (y + i) mod m;  p_i = x
 # All values stay below m, so with m <= 2^63 every sum fits in a uint64 and no step wraps.

@@ -1,0 +1,106 @@
+"""Package stage: the feature spec, the compiled forest, the regions and their filters in one artifact.
+
+Header (the container's meta map, see `pipeline.artifact`):
+
+    kind          "membership-filter"
+    provenance    whatever the build records (build time, input digests, tool version, ...)
+    feature_spec  the spec `pipeline.features.featurize` runs with
+    forest        `Forest.meta()`; the forest's arrays are the "forest.*" sections
+    boundaries    k - 1 ascending integer scores; region i holds boundaries[i-1] <= s < boundaries[i]
+    regions       k maps {mode, bits, hashes, members, fpr_budget, section}; section names the
+                  uint64 bit array of a "bloom" region and is None for "yes" and "no"
+    hash          {function, positions, bit_order, seed}: how keys become bit positions
+    measured      the held-out figures once verification has run, None before
+
+A key is answered by: features -> integer score -> region by the boundaries -> that region's filter.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from pipeline.artifact import write_artifact
+from pipeline.bloom import check_seed
+from pipeline.filters import RegionFilter
+from pipeline.trees import Forest
+
+HEADER_KIND = "membership-filter"
+# Fixed descriptions of the hashing scheme of `pipeline.bloom`; a loader refuses any other.
+HASHING = {"function": "xxh3_128", "positions": "enhanced-double-hashing", "bit_order": "lsb0-u64-le"}
+INT64_RANGE = (-(2**63), 2**63 - 1)
+
+
+def filter_section_name(region: int) -> str:
+    """Name of the section holding region's bit array."""
+    return f"filter.{region}"
+
+
+def _boundary_list(boundaries: Sequence[int] | np.ndarray) -> list[int]:
+    values = np.asarray(boundaries)
+    if values.ndim != 1 or (len(values) and not np.issubdtype(values.dtype, np.integer)):
+        raise ValueError(
+            f"boundaries must be a 1-d sequence of integer scores, got {values.dtype} of shape {values.shape}"
+        )
+    listed = [int(v) for v in values]
+    if any(not INT64_RANGE[0] <= v <= INT64_RANGE[1] for v in listed):
+        raise ValueError("boundaries must fit in int64")
+    if any(a > b for a, b in zip(listed, listed[1:])):
+        raise ValueError(f"boundaries must be ascending, got {listed}")
+    return listed
+
+
+def _region_entry(index: int, region: RegionFilter, hash_seed: int) -> dict[str, Any]:
+    if region.mode == "bloom":
+        region.bloom(hash_seed)  # checks bits, probes and word count agree
+        section = filter_section_name(index)
+    elif region.mode in ("yes", "no"):
+        if region.words.size:
+            raise ValueError(f"region {index} is in mode {region.mode!r} but carries {region.words.size} words")
+        section = None
+    else:
+        raise ValueError(f"region {index} has unknown mode {region.mode!r}")
+    return {
+        "mode": region.mode,
+        "bits": region.bits,
+        "hashes": region.hashes,
+        "members": region.members,
+        "fpr_budget": float(region.fpr_budget),
+        "section": section,
+    }
+
+
+def package_artifact(
+    path: str | os.PathLike,
+    *,
+    feature_spec: Mapping[str, Any],
+    forest: Forest,
+    boundaries: Sequence[int] | np.ndarray,
+    region_filters: Sequence[RegionFilter],
+    hash_seed: int,
+    provenance: Mapping[str, Any],
+    measured: Mapping[str, Any] | None = None,
+) -> None:
+    """Write the artifact for these parts to path (atomically; equal inputs give equal bytes)."""
+    listed = _boundary_list(boundaries)
+    if len(region_filters) != len(listed) + 1:
+        raise ValueError(f"{len(listed)} boundaries make {len(listed) + 1} regions, got {len(region_filters)} filters")
+    check_seed(hash_seed)
+    regions = [_region_entry(i, region, hash_seed) for i, region in enumerate(region_filters)]
+    sections = dict(forest.sections())
+    for index, region in enumerate(region_filters):
+        if region.mode == "bloom":
+            sections[filter_section_name(index)] = region.words
+    header = {
+        "kind": HEADER_KIND,
+        "provenance": dict(provenance),
+        "feature_spec": dict(feature_spec),
+        "forest": forest.meta(),
+        "boundaries": listed,
+        "regions": regions,
+        "hash": {**HASHING, "seed": hash_seed},
+        "measured": None if measured is None else dict(measured),
+    }
+    write_artifact(path, header, sections)

@@ -1,0 +1,312 @@
+"""The loader, end to end on a small real artifact: features, a trained and compiled LightGBM forest,
+planned regions, backup filters, package, open; then every way a file can be unusable."""
+
+from __future__ import annotations
+
+import math
+import struct
+import subprocess
+import sys
+
+import lightgbm as lgb
+import msgpack
+import numpy as np
+import pytest
+
+from pipeline.artifact import read_artifact, write_artifact
+from pipeline.bloom import bloom_fpr
+from pipeline.features import default_feature_spec, featurize
+from pipeline.filters import build_filters
+from pipeline.loader import FilterLoadError, open_filter
+from pipeline.model import compile_booster
+from pipeline.package import package_artifact
+from pipeline.regions import RegionSettings, plan_regions, region_of
+from pipeline.trees import score_batch
+
+TARGET_FPR = 0.02
+HASH_SEED = 0xE3B0C442
+# Binomial tolerance for measured rates: 4 standard deviations (common practice).
+SIGMA_TOLERANCE = 4.0
+PROVENANCE = {"built_at": "2026-12-01T00:00:00Z", "tool": "tamis test", "corpus_digest": "00ff"}
+
+BASE36 = np.frombuffer(b"abcdefghijklmnopqrstuvwxyz0123456789", dtype=np.uint8)
+LETTERS = BASE36[:26]
+
+
+def random_handles(rng: np.random.Generator, count: int, alphabet: np.ndarray, low: int, high: int) -> list[bytes]:
+    lengths = rng.integers(low, high + 1, count)
+    raw = alphabet[rng.integers(0, len(alphabet), int(lengths.sum()))].tobytes()
+    ends = np.cumsum(lengths)
+    return [raw[e - n : e] for e, n in zip(ends.tolist(), lengths.tolist())]
+
+
+def mixed_nonmembers(rng: np.random.Generator, count: int) -> list[bytes]:
+    """Mostly letter names, a quarter base-36 runs like the members: a good, imperfect classifier."""
+    names = random_handles(rng, count - count // 4, LETTERS, 5, 10)
+    lookalikes = random_handles(rng, count // 4, BASE36, 8, 12)
+    keys = names + lookalikes
+    rng.shuffle(keys)
+    return keys
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    """Build one artifact the way the pipeline does and keep the parts the tests compare against."""
+    rng = np.random.default_rng(7)
+    spec = default_feature_spec()
+    members = sorted(set(random_handles(rng, 4000, BASE36, 8, 12)))
+    member_set = set(members)
+    train_non, val_non, fresh_non = (
+        [k for k in mixed_nonmembers(rng, n) if k not in member_set] for n in (4000, 20_000, 40_000)
+    )
+
+    X_train = featurize(members + train_non, spec)
+    labels = np.r_[np.ones(len(members)), np.zeros(len(train_non))]
+    params = {"objective": "binary", "num_leaves": 7, "learning_rate": 0.3, "verbose": -1,
+              "num_threads": 2, "seed": 1, "deterministic": True, "min_data_in_leaf": 20}
+    booster = lgb.train(params, lgb.Dataset(X_train, labels), num_boost_round=12)
+    forest = compile_booster(booster)
+
+    member_scores = score_batch(forest, featurize(members, spec))
+    val_scores = score_batch(forest, featurize(val_non, spec))
+    plan = plan_regions(member_scores, val_scores, None, TARGET_FPR, RegionSettings(segments=200))
+    member_regions = region_of(member_scores, plan.boundaries)
+    filters = build_filters(members, member_regions, plan.fprs, HASH_SEED)
+
+    path = tmp_path_factory.mktemp("artifact") / "filter.tamis"
+    package_artifact(path, feature_spec=spec, forest=forest, boundaries=plan.boundaries,
+                     region_filters=filters, hash_seed=HASH_SEED, provenance=PROVENANCE)
+    return {"path": path, "members": members, "fresh": fresh_non, "plan": plan, "filters": filters,
+            "forest": forest, "spec": spec, "validation_keys": len(val_non)}
+
+
+def test_the_plan_has_real_filters(built):
+    # The test is only meaningful if several regions and at least one Bloom filter were built.
+    assert built["plan"].regions >= 2
+    assert any(f.mode == "bloom" for f in built["filters"])
+
+
+def test_every_member_answers_yes(built):
+    loaded = open_filter(built["path"])
+    members = built["members"]
+    assert loaded.contains_many(members).all()
+    assert all(loaded.contains(k) for k in members)
+    assert all(k.decode() in loaded for k in members[:500])
+
+
+def test_fpr_on_fresh_nonmembers(built):
+    loaded = open_filter(built["path"])
+    fresh = built["fresh"]
+    answers = loaded.contains_many(fresh)
+    measured = answers.mean()
+
+    # Given each fresh key's region, a key answers yes with probability 1 ("yes"), 0 ("no") or the
+    # Bloom formula's rate (B. H. Bloom, CACM 13(7), 1970): a Poisson-binomial count.
+    regions = region_of(score_batch(built["forest"], featurize(fresh, built["spec"])), built["plan"].boundaries)
+    per_region = np.array([
+        1.0 if f.mode == "yes" else 0.0 if f.mode == "no" else bloom_fpr(f.bits, f.members, f.hashes)
+        for f in built["filters"]
+    ])
+    p = per_region[regions]
+    sigma = math.sqrt(float((p * (1 - p)).sum()))
+    assert abs(answers.sum() - p.sum()) <= SIGMA_TOLERANCE * max(sigma, 1.0)
+
+    # Against the plan's expected rate, estimated on 20,000 validation keys: both sides are sample
+    # rates of at most p each, so the difference has variance below p/N_val + p/N_fresh.
+    expected = built["plan"].expected_fpr
+    sigma = math.sqrt(expected / built["validation_keys"] + expected / len(fresh))
+    assert abs(measured - expected) <= SIGMA_TOLERANCE * sigma, (measured, expected)
+
+
+def test_single_and_batch_paths_agree(built):
+    loaded = open_filter(built["path"])
+    keys = built["fresh"][:1500] + built["members"][:500] + [b"", b"\x00", "h\u00e9ros".encode(), b"\xff\xfe"]
+    batch = loaded.contains_many(keys)
+    assert [loaded.contains(k) for k in keys] == batch.tolist()
+
+
+def test_yes_and_no_regions_answer_by_region_alone(built, tmp_path):
+    # Two regions split at the median member score: members of the upper one go in, the budgets are
+    # 0 and 1, so the lower region answers no and the upper yes, whatever the key.
+    forest, spec = built["forest"], built["spec"]
+    members = built["members"]
+    scores = score_batch(forest, featurize(members, spec))
+    boundary = int(np.median(scores))
+    upper = [k for k, s in zip(members, scores) if s >= boundary]
+    filters = build_filters(upper, np.ones(len(upper), np.int64), np.array([0.0, 1.0]), HASH_SEED)
+    assert [f.mode for f in filters] == ["no", "yes"]
+    path = tmp_path / "modes"
+    package_artifact(path, feature_spec=spec, forest=forest, boundaries=[boundary], region_filters=filters,
+                     hash_seed=HASH_SEED, provenance={})
+    keys = built["fresh"][:2000] + members
+    in_upper = score_batch(forest, featurize(keys, spec)) >= boundary
+    loaded = open_filter(path)
+    assert np.array_equal(loaded.contains_many(keys), in_upper)
+    assert [loaded.contains(k) for k in keys[:300]] == in_upper[:300].tolist()
+
+
+def test_key_types(built):
+    loaded = open_filter(built["path"])
+    keys = built["members"][:50] + built["fresh"][:50]
+    as_bytes = loaded.contains_many(keys)
+    as_str = [k.decode() for k in keys]
+    assert np.array_equal(loaded.contains_many(as_str), as_bytes)
+    assert np.array_equal(loaded.contains_many(tuple(keys)), as_bytes)
+    assert np.array_equal(loaded.contains_many(iter(keys)), as_bytes)
+    assert np.array_equal(loaded.contains_many(np.array(as_str)), as_bytes)
+    assert np.array_equal(loaded.contains_many(np.array(keys)), as_bytes)
+    assert np.array_equal(loaded.contains_many(np.array(keys, dtype=object)), as_bytes)
+    assert loaded.contains(as_str[0]) == loaded.contains(keys[0])
+    assert loaded.contains_many([]).shape == (0,)
+    with pytest.raises(TypeError, match="str or bytes, got int 5"):
+        loaded.contains_many([b"a", 5])
+    with pytest.raises(TypeError, match="str or bytes, got NoneType"):
+        loaded.contains_many(k for k in [b"a", None])
+    with pytest.raises(TypeError, match="use contains for a single key"):
+        loaded.contains_many("abc")
+    with pytest.raises(TypeError, match="1-d array of str or bytes"):
+        loaded.contains_many(np.arange(3))
+    with pytest.raises(TypeError, match="str or bytes"):
+        loaded.contains(3.5)
+
+
+def test_info_is_the_header(built):
+    loaded = open_filter(built["path"])
+    info = loaded.info
+    assert info["format"] == "1.0"
+    assert info["provenance"] == PROVENANCE
+    assert info["feature_spec"] == built["spec"]
+    assert info["boundaries"] == built["plan"].boundaries.tolist()
+    assert [r["mode"] for r in info["regions"]] == [f.mode for f in built["filters"]]
+    assert [r["fpr_budget"] for r in info["regions"]] == built["plan"].fprs.tolist()
+    assert info["hash"]["seed"] == HASH_SEED and info["measured"] is None
+    info["provenance"]["tool"] = "changed"
+    assert loaded.info["provenance"] == PROVENANCE  # a copy each time
+
+
+def test_packaging_is_deterministic_and_records_measured(built, tmp_path):
+    again, measured = tmp_path / "again", tmp_path / "measured"
+    kwargs = dict(feature_spec=built["spec"], forest=built["forest"], boundaries=built["plan"].boundaries,
+                  region_filters=built["filters"], hash_seed=HASH_SEED, provenance=PROVENANCE)
+    package_artifact(again, **kwargs)
+    assert again.read_bytes() == built["path"].read_bytes()
+    package_artifact(measured, **kwargs, measured={"fpr": 0.0195, "fpr_upper": 0.021})
+    assert open_filter(measured).info["measured"] == {"fpr": 0.0195, "fpr_upper": 0.021}
+
+
+def test_package_refuses_mismatched_parts(built, tmp_path):
+    three = build_filters([b"a", b"b", b"c"], np.array([0, 1, 2]), np.array([0.1, 0.1, 0.1]), HASH_SEED)
+    common = dict(feature_spec=built["spec"], forest=built["forest"], hash_seed=HASH_SEED, provenance={})
+    with pytest.raises(ValueError, match="1 boundaries make 2 regions, got 3 filters"):
+        package_artifact(tmp_path / "x", boundaries=[0], region_filters=three, **common)
+    with pytest.raises(ValueError, match="ascending"):
+        package_artifact(tmp_path / "x", boundaries=[5, 3], region_filters=three, **common)
+    with pytest.raises(ValueError, match="integer scores"):
+        package_artifact(tmp_path / "x", boundaries=[0.5, 3.0], region_filters=three, **common)
+    with pytest.raises(ValueError, match="hash seed"):
+        package_artifact(tmp_path / "x", boundaries=[3, 5], region_filters=three, **{**common, "hash_seed": -1})
+    assert not (tmp_path / "x").exists()
+
+
+# --- unusable files ---------------------------------------------------------------------------------
+
+
+def section_table(raw: bytes) -> tuple[int, list[dict]]:
+    (length,) = struct.unpack_from("<I", raw, 12)
+    return length, msgpack.unpackb(raw[32 : 32 + length])["sections"]
+
+
+def test_a_flipped_byte_in_any_section_is_refused(built, tmp_path):
+    raw = built["path"].read_bytes()
+    _, table = section_table(raw)
+    assert {e["name"] for e in table} >= {"forest.value", "forest.threshold"}
+    bad = tmp_path / "bad"
+    for entry in table:
+        if entry["length"] == 0:
+            continue
+        flipped = bytearray(raw)
+        flipped[entry["offset"] + entry["length"] // 2] ^= 0x04
+        bad.write_bytes(bytes(flipped))
+        with pytest.raises(FilterLoadError, match=f"checksum mismatch in section '{entry['name']}'"):
+            open_filter(bad)
+
+
+@pytest.mark.parametrize("fraction", [0.0, 0.001, 0.01, 0.3, 0.9, 0.9999])
+def test_truncated_file_is_refused(built, tmp_path, fraction):
+    raw = built["path"].read_bytes()
+    size = int(len(raw) * fraction)
+    bad = tmp_path / "cut"
+    bad.write_bytes(raw[:size])
+    with pytest.raises(FilterLoadError, match=f"truncated at byte {size}\\b"):
+        open_filter(bad)
+
+
+def test_bad_magic_and_unknown_major_are_refused(built, tmp_path):
+    raw = bytearray(built["path"].read_bytes())
+    bad = tmp_path / "bad"
+    bad.write_bytes(b"PK\x03\x04" + bytes(raw[4:]))
+    with pytest.raises(FilterLoadError, match="not a tamis artifact"):
+        open_filter(bad)
+    raw[8:10] = struct.pack("<H", 2)
+    bad.write_bytes(bytes(raw))
+    with pytest.raises(FilterLoadError, match="format 2.0 not supported"):
+        open_filter(bad)
+    with pytest.raises(FilterLoadError, match="cannot read artifact"):
+        open_filter(tmp_path / "absent")
+
+
+def rewritten(built, tmp_path, edit) -> str:
+    """A valid container whose header was changed by edit(header, sections): only the loader objects."""
+    header, sections = read_artifact(built["path"])
+    sections = {k: np.array(v) for k, v in sections.items()}
+    edit(header, sections)
+    path = tmp_path / "edited"
+    write_artifact(path, header, sections)
+    return path
+
+
+def _first_bloom(header) -> dict:
+    return next(r for r in header["regions"] if r["mode"] == "bloom")
+
+
+@pytest.mark.parametrize(
+    "edit, message",
+    [
+        (lambda h, s: h.update(kind="something-else"), "artifact kind"),
+        (lambda h, s: h["hash"].update(function="md5"), "unknown hashing scheme"),
+        (lambda h, s: h["hash"].update(seed="7"), "unknown hashing scheme"),
+        (lambda h, s: h["feature_spec"].update(version=99), "feature spec version 99"),
+        (lambda h, s: h["feature_spec"].update(bigram_buckets=16), "the forest reads"),
+        (lambda h, s: h["forest"].update(trees=1), "forest meta says 1 trees"),
+        (lambda h, s: s.pop("forest.value"), "forest sections must be"),
+        (lambda h, s: h.update(boundaries=h["boundaries"] + [2**40]), "boundaries make"),
+        (lambda h, s: h.update(boundaries=[1.5] * len(h["boundaries"])), "int64 integers"),
+        (lambda h, s: h.update(boundaries=None), "'boundaries' is missing"),
+        (lambda h, s: h["regions"][0].update(mode="maybe"), "unknown mode 'maybe'"),
+        (lambda h, s: _first_bloom(h).update(section="filter.99"), "does not hold"),
+        (lambda h, s: _first_bloom(h).update(bits=_first_bloom(h)["bits"] + 64), "uint64 words"),
+        (lambda h, s: _first_bloom(h).update(hashes=1000), "between 1 and 64 probes"),
+        (lambda h, s: _first_bloom(h).update(hashes=None), "integer 'bits' and 'hashes'"),
+        (lambda h, s: s.update({_first_bloom(h)["section"]: np.zeros(3, "<i8")}), "uint64 words"),
+    ],
+)
+def test_inconsistent_headers_are_refused(built, tmp_path, edit, message):
+    with pytest.raises(FilterLoadError, match=message):
+        open_filter(rewritten(built, tmp_path, edit))
+
+
+def test_unknown_header_fields_and_sections_are_ignored(built, tmp_path):
+    def add(header, sections):
+        header["later_field"] = {"x": 1}
+        sections["later.section"] = np.arange(3, dtype="<u4")
+
+    loaded = open_filter(rewritten(built, tmp_path, add))
+    assert loaded.contains_many(built["members"]).all()
+
+
+def test_loader_imports_only_numpy_xxhash_msgpack():
+    # A downstream service installs the loader without the build stack (DESIGN.md section 1).
+    build_stack = "{'polars', 'lightgbm', 'scipy', 'prefect', 'pandas', 'matplotlib'}"
+    code = f"import sys, pipeline.loader; print(sorted({{m.split('.')[0] for m in sys.modules}} & {build_stack}))"
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert result.stdout.strip() == "[]"
