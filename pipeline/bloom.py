@@ -113,16 +113,25 @@ def check_seed(seed: int) -> None:
         raise ValueError(f"hash seed must be an integer in [0, 2^64), got {seed}")
 
 
-def hash_keys(keys: Sequence[bytes], seed: int) -> KeyHashes:
-    """xxh3_128 of every key under seed, split into its low and high 64-bit halves.
+def _halves(digests: list[bytes]) -> KeyHashes:
+    # xxh3_128 digests are big-endian (high half first): one joined buffer read as big-endian
+    # uint64 pairs gives both halves without further Python work.
+    pairs = np.frombuffer(b"".join(digests), dtype=">u8").reshape(-1, 2)
+    return KeyHashes(low=pairs[:, 1].astype(np.uint64), high=pairs[:, 0].astype(np.uint64))
 
-    One xxhash call per key; the 16-byte digests are big-endian (high half first), so one joined
-    buffer read as big-endian uint64 pairs gives both halves without further Python work.
-    """
+
+def hash_keys(keys: Sequence[bytes], seed: int) -> KeyHashes:
+    """xxh3_128 of every key under seed, split into its low and high 64-bit halves (one call a key)."""
     check_seed(seed)
     digest, seed = xxhash.xxh3_128_digest, int(seed)
-    pairs = np.frombuffer(b"".join([digest(key, seed) for key in keys]), dtype=">u8").reshape(-1, 2)
-    return KeyHashes(low=pairs[:, 1].astype(np.uint64), high=pairs[:, 0].astype(np.uint64))
+    return _halves([digest(key, seed) for key in keys])
+
+
+def hash_slices(buffer: bytes, starts: np.ndarray, stops: np.ndarray, seed: int) -> KeyHashes:
+    """`hash_keys` of the keys buffer[starts[i]:stops[i]] (keys packed in one buffer)."""
+    check_seed(seed)
+    digest, seed = xxhash.xxh3_128_digest, int(seed)
+    return _halves([digest(buffer[a:b], seed) for a, b in zip(starts.tolist(), stops.tolist())])
 
 
 def probe_positions(hashes: KeyHashes, bits: int, probes: int) -> np.ndarray:

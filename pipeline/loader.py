@@ -4,11 +4,16 @@
     bans = open_filter("store/7/artifact.tamis")
     bans.contains("frost_wyrm_1984")            # True: maybe banned; False: surely not
     bans.contains_many(["a", b"b"])             # numpy bool array, in input order
+    bans.contains_many(frame["handle"])         # a polars String or Binary column works too
 
 A key is answered the way the build inserted it: features (`pipeline.features`) -> integer score
 (`pipeline.trees`) -> region by the integer boundaries (`pipeline.regions.region_of`) -> that region's
 filter ("yes", "no", or a Bloom filter). Every check runs when the file is opened; any file that
 cannot be used raises FilterLoadError, and nothing stored in it is ever executed.
+
+`open_filter(path, on_error="maybe")` never raises for an unusable file: it logs and warns once,
+and returns a degraded filter that answers True ("maybe") for every key, so a service that starts
+with a damaged artifact loses the filter's savings but never wrongly turns a member away.
 
 A "maybe" (True) is only a hint: confirm it against the authoritative set before acting on it.
 """
@@ -17,20 +22,35 @@ from __future__ import annotations
 
 import bisect
 import copy
+import logging
 import os
+import sys
+import warnings
 from dataclasses import dataclass
+from functools import cached_property
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any, Iterable, Literal, Sequence
 
 import numpy as np
 
 from pipeline.artifact import ArtifactError, load_artifact
-from pipeline.bloom import BloomFilter, hash_keys
-from pipeline.features import check_feature_spec, feature_count, featurize
+from pipeline.bloom import BloomFilter, hash_slices
+from pipeline.features import FeatureLayout, feature_layout, featurize_columns, featurize_one
 from pipeline.filters import FILTER_MODES
 from pipeline.package import HASHING, HEADER_KIND
 from pipeline.regions import region_of
-from pipeline.trees import Forest, score_batch, score_row
+from pipeline.trees import Forest, score_columns, score_values
+
+LOG = logging.getLogger(__name__)
+
+# Keys answered per pass of `contains_many`, so that a batch of any size needs only a few MB of
+# work arrays (the feature columns take 4 bytes x features per key: 5.8 MB here for the demo's
+# 89 features), while each pass is long enough that its fixed numpy costs do not show. The answers
+# do not depend on it.
+LOOKUP_CHUNK_KEYS = 16_384
+
+OnError = Literal["raise", "maybe"]
+ON_ERROR_CHOICES = ("raise", "maybe")
 
 
 class FilterLoadError(ArtifactError):
@@ -45,6 +65,26 @@ class RegionAnswer:
     bloom: BloomFilter | None
 
 
+# ---------------------------------------------------------------------------------------------------
+# Keys in: a list, tuple, iterable or numpy array of str/bytes, or a polars String/Binary Series.
+# ---------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class PackedKeys:
+    """A batch of keys as one bytes buffer and int64 offsets: key i is buffer[offsets[i]:offsets[i+1]]."""
+
+    buffer: bytes
+    offsets: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.offsets) - 1
+
+    @property
+    def data(self) -> np.ndarray:
+        return np.frombuffer(self.buffer, dtype=np.uint8)
+
+
 def _bytes_of(keys: Sequence[Any]) -> list[bytes]:
     """Keys as bytes (str is encoded as UTF-8); TypeError names the first key that is neither."""
     try:
@@ -54,10 +94,45 @@ def _bytes_of(keys: Sequence[Any]) -> list[bytes]:
         raise TypeError(f"keys must be str or bytes, got {type(bad).__name__} {bad!r}") from None
 
 
-def _key_list(keys: Iterable[str | bytes] | np.ndarray) -> list[bytes]:
-    """A batch of keys as a list of bytes: any iterable of str/bytes, or a 1-d numpy array of them."""
+def _pack_list(keys: list[bytes]) -> PackedKeys:
+    offsets = np.zeros(len(keys) + 1, dtype=np.int64)
+    np.cumsum(np.fromiter(map(len, keys), dtype=np.int64, count=len(keys)), out=offsets[1:])
+    return PackedKeys(b"".join(keys), offsets)
+
+
+def _is_polars_series(keys: Any) -> bool:
+    # polars is never imported here: a caller who passes a Series has imported it already.
+    polars = sys.modules.get("polars")
+    return polars is not None and isinstance(keys, polars.Series)
+
+
+def _pack_polars(series: Any) -> PackedKeys:
+    """A polars String or Binary Series packed from polars' own buffers: its byte lengths and its
+    values joined into one buffer, with no Python object per key."""
+    polars = sys.modules["polars"]  # imported by the caller (see _is_polars_series)
+    dtype = series.dtype
+    if series.null_count():
+        first = int(series.is_null().arg_max())
+        raise TypeError(f"keys must be str or bytes, got a null at position {first} of the polars Series")
+    if dtype == polars.String:
+        lengths = series.str.len_bytes()
+        buffer = series.str.join("").item().encode("utf-8") if len(series) else b""
+    elif dtype == polars.Binary:
+        lengths = series.bin.size()
+        buffer = b"".join(series.to_list())  # polars offers no join of binary values
+    else:
+        raise TypeError(f"a polars Series of keys must have dtype String or Binary, got {dtype}")
+    offsets = np.zeros(len(series) + 1, dtype=np.int64)
+    np.cumsum(lengths.cast(polars.Int64).to_numpy(), out=offsets[1:])
+    return PackedKeys(buffer, offsets)
+
+
+def pack_batch(keys: Iterable[str | bytes] | np.ndarray | Any) -> PackedKeys:
+    """Any batch that `contains_many` takes, packed; TypeError for anything else."""
     if isinstance(keys, (str, bytes)):
         raise TypeError("contains_many takes a sequence of keys; use contains for a single key")
+    if _is_polars_series(keys):
+        return _pack_polars(keys)
     if isinstance(keys, np.ndarray):
         if keys.ndim != 1 or keys.dtype.kind not in "SUO":
             raise TypeError(
@@ -66,7 +141,12 @@ def _key_list(keys: Iterable[str | bytes] | np.ndarray) -> list[bytes]:
         keys = keys.tolist()
     elif not isinstance(keys, (list, tuple)):
         keys = list(keys)
-    return _bytes_of(keys)
+    return _pack_list(_bytes_of(keys))
+
+
+# ---------------------------------------------------------------------------------------------------
+# An opened artifact
+# ---------------------------------------------------------------------------------------------------
 
 
 @dataclass(frozen=True, eq=False)
@@ -82,43 +162,107 @@ class MembershipFilter:
     regions: tuple[RegionAnswer, ...]
     hash_seed: int
 
+    degraded = False
+
     @property
     def info(self) -> dict:
         """A copy of the artifact's header (provenance, feature spec, forest, boundaries, regions,
-        hash, measured FPR) plus "format", the container version read from the file."""
-        return {**copy.deepcopy(self.header), "format": self.format}
+        hash, measured FPR) plus "format", the container version read from the file, and
+        "degraded": False."""
+        return {**copy.deepcopy(self.header), "format": self.format, "degraded": False}
 
-    def contains_many(self, keys: Iterable[str | bytes] | np.ndarray) -> np.ndarray:
+    # Derived once from the checked header, on first use.
+
+    @cached_property
+    def _layout(self) -> FeatureLayout:
+        return feature_layout(self.feature_spec)
+
+    @cached_property
+    def _boundary_array(self) -> np.ndarray:
+        return np.array(self.boundaries, dtype=np.int64)
+
+    @cached_property
+    def _answer_by_mode(self) -> np.ndarray:
+        """Per region, the answer when no Bloom filter is asked: True for "yes", False otherwise."""
+        return np.array([region.mode == "yes" for region in self.regions])
+
+    @cached_property
+    def _is_bloom(self) -> np.ndarray:
+        return np.array([region.mode == "bloom" for region in self.regions])
+
+    @cached_property
+    def _bloom_indices(self) -> tuple[int, ...]:
+        return tuple(i for i, region in enumerate(self.regions) if region.mode == "bloom")
+
+    def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
         """For each key, True when it may be a member and False when it surely is not.
 
-        Keys are str (UTF-8) or bytes. A numpy "S" array drops trailing NUL bytes of its elements
-        (numpy's rule), so pass keys that may end in NUL as a list of bytes.
+        Keys are str (UTF-8) or bytes, in a list, tuple, any iterable, a 1-d numpy array, or a
+        polars Series of dtype String or Binary. A numpy "S" array drops trailing NUL bytes of its
+        elements (numpy's rule), so pass keys that may end in NUL as a list of bytes.
         """
-        batch = _key_list(keys)
-        answers = np.zeros(len(batch), dtype=bool)
-        if not batch:
-            return answers
-        scores = score_batch(self.forest, featurize(batch, self.feature_spec))
-        region_index = region_of(scores, np.array(self.boundaries, dtype=np.int64))
-        hashes = hash_keys(batch, self.hash_seed) if any(r.mode == "bloom" for r in self.regions) else None
-        for index, region in enumerate(self.regions):
-            if region.mode == "no":
-                continue
-            mask = region_index == index
-            if region.mode == "yes":
-                answers[mask] = True
-            elif mask.any():
-                answers[mask] = region.bloom.query_hashes(hashes.select(mask))
+        return self.answer_packed(pack_batch(keys))
+
+    def answer_packed(self, packed: PackedKeys) -> np.ndarray:
+        """`contains_many` of keys already packed (`pack_batch`)."""
+        answers = np.zeros(len(packed), dtype=bool)
+        for start in range(0, len(packed), LOOKUP_CHUNK_KEYS):
+            stop = min(start + LOOKUP_CHUNK_KEYS, len(packed))
+            answers[start:stop] = self._answer_chunk(packed, start, stop)
+        return answers
+
+    def _answer_chunk(self, packed: PackedKeys, start: int, stop: int) -> np.ndarray:
+        offsets = packed.offsets[start : stop + 1]
+        data = packed.data[offsets[0] : offsets[-1]]
+        columns = featurize_columns(data, offsets - offsets[0], self._layout)
+        region_index = region_of(score_columns(self.forest, columns), self._boundary_array)
+        answers = self._answer_by_mode[region_index]
+        in_bloom = np.flatnonzero(self._is_bloom[region_index])
+        if len(in_bloom):
+            hashes = hash_slices(packed.buffer, offsets[in_bloom], offsets[in_bloom + 1], self.hash_seed)
+            bloom_regions = region_index[in_bloom]
+            for index in self._bloom_indices:
+                picked = bloom_regions == index
+                if picked.any():
+                    answers[in_bloom[picked]] = self.regions[index].bloom.query_hashes(hashes.select(picked))
         return answers
 
     def contains(self, key: str | bytes) -> bool:
-        """`contains_many` for one key, without batch set-up: the same answer."""
+        """`contains_many` for one key, in plain Python without array set-up: the same answer."""
         (data,) = _bytes_of((key,))
-        score = score_row(self.forest, featurize([data], self.feature_spec)[0])
+        score = score_values(self.forest, featurize_one(data, self._layout))
         region = self.regions[bisect.bisect_right(self.boundaries, score)]
         if region.mode == "bloom":
             return region.bloom.contains(data)
         return region.mode == "yes"
+
+    def __contains__(self, key: str | bytes) -> bool:
+        return self.contains(key)
+
+
+@dataclass(frozen=True, eq=False)
+class DegradedFilter:
+    """Stands in for an artifact that could not be opened: every key may be a member.
+
+    It answers True for every key, so it never gives a false negative; `info` says why it is
+    degraded. Input is checked as `MembershipFilter` checks it.
+    """
+
+    path: Path
+    reason: str
+
+    degraded = True
+
+    @property
+    def info(self) -> dict:
+        return {"degraded": True, "reason": self.reason, "path": str(self.path)}
+
+    def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
+        return np.ones(len(pack_batch(keys)), dtype=bool)
+
+    def contains(self, key: str | bytes) -> bool:
+        _bytes_of((key,))
+        return True
 
     def __contains__(self, key: str | bytes) -> bool:
         return self.contains(key)
@@ -152,7 +296,7 @@ def _region(path: Path, index: int, entry: Any, sections: dict, seed: int) -> Re
     if entry["mode"] != "bloom":
         return RegionAnswer(entry["mode"], None)
     name = entry.get("section")
-    if name not in sections:
+    if not isinstance(name, str) or name not in sections:
         raise FilterLoadError(f"{path}: region {index} names section {name!r}, which the file does not hold")
     if type(entry.get("bits")) is not int or type(entry.get("hashes")) is not int:
         raise FilterLoadError(f"{path}: region {index} needs integer 'bits' and 'hashes'")
@@ -174,12 +318,10 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict) -
     seed = hashing["seed"]
     spec = _field(path, header, "feature_spec", dict)
     try:
-        check_feature_spec(spec)
+        layout = feature_layout(spec)
         forest = Forest.from_parts(_field(path, header, "forest", dict), sections)
-        if feature_count(spec) != forest.features:
-            raise ValueError(
-                f"the feature spec gives {feature_count(spec)} features, the forest reads {forest.features}"
-            )
+        if layout.count != forest.features:
+            raise ValueError(f"the feature spec gives {layout.count} features, the forest reads {forest.features}")
     except ValueError as error:
         raise FilterLoadError(f"{path}: {error}") from error
     boundaries = _boundaries(path, header)
@@ -193,15 +335,36 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict) -
     return MembershipFilter(path, f"{version[0]}.{version[1]}", header, spec, forest, boundaries, regions, seed)
 
 
-def open_filter(path: str | os.PathLike) -> MembershipFilter:
-    """Open an artifact written by `pipeline.package.package_artifact`; raise FilterLoadError if unusable.
-
-    The bit arrays and forest arrays stay mapped from the file (read-only, not copied), so the file
-    must not be rewritten in place while open; replacing it by rename, as publishing does, is safe.
-    """
-    path = Path(path)
+def _open_checked(path: Path) -> MembershipFilter:
     try:
         loaded = load_artifact(path)
     except ArtifactError as error:
         raise FilterLoadError(str(error)) from error
     return _parse(path, loaded.version, loaded.header, loaded.sections)
+
+
+def open_filter(path: str | os.PathLike, on_error: OnError = "raise") -> MembershipFilter | DegradedFilter:
+    """Open an artifact written by `pipeline.package.package_artifact`.
+
+    on_error="raise" (the default): raise FilterLoadError if the file is unusable.
+    on_error="maybe": return a `DegradedFilter` instead, which answers True for every key, after
+    logging the reason at ERROR level and issuing a RuntimeWarning, once, here.
+
+    The bit arrays stay mapped from the file (read-only, not copied), so the file must not be
+    rewritten in place while open; replacing it by rename, as publishing does, is safe.
+    """
+    if on_error not in ON_ERROR_CHOICES:
+        raise ValueError(f"on_error must be one of {list(ON_ERROR_CHOICES)}, got {on_error!r}")
+    path = Path(path)
+    try:
+        return _open_checked(path)
+    except FilterLoadError as error:
+        if on_error == "raise":
+            raise
+        message = (
+            f"membership filter {path} is unusable, so every key now answers 'maybe' (no savings, "
+            f"no false negatives): {error}"
+        )
+        LOG.error(message)
+        warnings.warn(message, RuntimeWarning, stacklevel=2)
+        return DegradedFilter(path, str(error))

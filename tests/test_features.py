@@ -84,3 +84,61 @@ def test_features_are_bit_identical_in_a_fresh_process():
     keys = [bytes(rng.integers(0, 256, size=rng.integers(1, 40)).astype(np.uint8)) for _ in range(20000)]
     here = hashlib.sha256(featurize(keys, SPEC).tobytes()).hexdigest()
     assert digests == {here}
+
+
+# --- the single-key path and the feature-major layout ---------------------------------------------
+
+
+def random_keys(seed: int, count: int, longest: int) -> list[bytes]:
+    """Keys of every byte value 0..255, of lengths 0 to `longest`, with runs of one class mixed in."""
+    rng = np.random.default_rng(seed)
+    keys = []
+    for _ in range(count):
+        key = bytes(rng.integers(0, 256, size=rng.integers(0, longest + 1)).astype(np.uint8))
+        if rng.random() < 0.3:  # digit and letter runs, so runs and digit features are exercised
+            key = key[:4] + b"0123456789"[: rng.integers(1, 11)] + b"Ab" * int(rng.integers(0, 4)) + key[4:]
+        keys.append(key)
+    return keys + [bytes(range(256)), bytes(range(256))[::-1] * 2, b"\x00", b"9", b"a" * 300]
+
+
+@pytest.mark.parametrize(
+    "spec",
+    [SPEC, {**SPEC, "bigram_buckets": 1, "trigram_buckets": 2, "affix_buckets": 1},
+     {**SPEC, "bigram_buckets": 128, "trigram_buckets": 64, "affix_buckets": 65536}],
+)
+def test_featurize_one_gives_the_batch_values_bit_for_bit(spec):
+    keys = random_keys(17, 4000, 40)
+    batch = featurize(keys, spec)
+    one = np.array([features.featurize_one(k, spec) for k in keys], dtype=np.float32)
+    assert np.array_equal(one.view(np.uint32), batch.view(np.uint32))
+    assert all(type(v) is float for v in features.featurize_one(keys[0], spec))
+
+
+def test_featurize_columns_is_the_transpose_and_ignores_chunk_edges(monkeypatch):
+    keys = random_keys(23, 3000, 30)
+    data, offsets = features.pack_keys(keys)
+    rows = featurize(keys, SPEC)
+    assert np.array_equal(features.featurize_columns(data, offsets, SPEC), rows.T)
+    for chunk in (1, 2, 3, 100):  # chunk edges between keys of one byte or none
+        monkeypatch.setattr(features, "_CHUNK_KEYS", chunk)
+        assert np.array_equal(features.featurize_packed(data, offsets, SPEC), rows)
+
+
+def test_packed_input_is_checked():
+    data, offsets = features.pack_keys([b"ab", b"c"])
+    with pytest.raises(ValueError, match="uint8 data"):
+        features.featurize_packed(data.astype(np.int16), offsets, SPEC)
+    with pytest.raises(ValueError, match="ascend from 0"):
+        features.featurize_packed(data, offsets[::-1].copy(), SPEC)
+    with pytest.raises(ValueError, match="int64 offsets"):
+        features.featurize_packed(data, offsets.astype(np.int32), SPEC)
+
+
+def test_layout_and_spec_agree():
+    layout = features.feature_layout(SPEC)
+    assert layout.count == feature_count(SPEC) == len(feature_names(SPEC)) == 89
+    assert layout.spec == SPEC and features.feature_layout(layout) is layout
+    with pytest.raises(ValueError, match="power of two"):
+        features.feature_layout({**SPEC, "affix_buckets": True})
+    with pytest.raises(ValueError, match="at most 255"):
+        features.feature_layout({**SPEC, "bigram_buckets": 256})

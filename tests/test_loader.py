@@ -310,3 +310,125 @@ def test_loader_imports_only_numpy_xxhash_msgpack():
     code = f"import sys, pipeline.loader; print(sorted({{m.split('.')[0] for m in sys.modules}} & {build_stack}))"
     result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert result.stdout.strip() == "[]"
+
+
+# --- polars columns, packed keys ------------------------------------------------------------------
+
+
+def test_polars_columns_answer_like_lists(built):
+    import polars as pl
+
+    loaded = open_filter(built["path"])
+    keys = built["members"][:300] + built["fresh"][:3000] + ["h\u00e9ros_\u2603".encode(), b""]
+    expected = loaded.contains_many(keys)
+    text = pl.Series("handle", [k.decode() for k in keys], dtype=pl.String)
+    assert np.array_equal(loaded.contains_many(text), expected)
+    assert np.array_equal(loaded.contains_many(pl.Series(keys, dtype=pl.Binary)), expected)
+    # a slice of a larger column (its buffers start at an offset) and an empty column
+    assert np.array_equal(loaded.contains_many(text.slice(100, 500)), expected[100:600])
+    assert loaded.contains_many(pl.Series([], dtype=pl.String)).shape == (0,)
+    with pytest.raises(TypeError, match="null at position 1"):
+        loaded.contains_many(pl.Series(["a", None, "b"]))
+    with pytest.raises(TypeError, match="dtype String or Binary, got Int64"):
+        loaded.contains_many(pl.Series([1, 2]))
+
+
+def test_answers_do_not_depend_on_the_lookup_chunk(built, monkeypatch):
+    from pipeline import loader
+
+    loaded = open_filter(built["path"])
+    keys = built["fresh"][:5000] + built["members"][:1000]
+    whole = loaded.contains_many(keys)
+    monkeypatch.setattr(loader, "LOOKUP_CHUNK_KEYS", 333)
+    assert np.array_equal(loaded.contains_many(keys), whole)
+
+
+# --- degraded mode --------------------------------------------------------------------------------
+
+
+def test_an_unusable_file_opens_degraded_with_on_error_maybe(built, tmp_path, caplog):
+    raw = bytearray(built["path"].read_bytes())
+    raw[-1] ^= 0xFF  # the last section's checksum no longer matches
+    bad = tmp_path / "damaged.tamis"
+    bad.write_bytes(bytes(raw))
+    with pytest.raises(FilterLoadError):
+        open_filter(bad)
+    with pytest.warns(RuntimeWarning, match="every key now answers 'maybe'") as warned:
+        with caplog.at_level("ERROR", logger="pipeline.loader"):
+            degraded = open_filter(bad, on_error="maybe")
+    assert len(warned) == 1
+    assert [r.levelname for r in caplog.records] == ["ERROR"] and "checksum mismatch" in caplog.records[0].getMessage()
+    assert degraded.degraded and degraded.info["degraded"] is True
+    assert "checksum mismatch" in degraded.info["reason"]
+    keys = built["members"][:100] + built["fresh"][:100]
+    assert degraded.contains_many(keys).all() and degraded.contains_many(keys).shape == (200,)
+    assert all(degraded.contains(k) for k in keys[:20]) and keys[0] in degraded
+    with pytest.raises(TypeError, match="str or bytes"):
+        degraded.contains_many([b"a", 5])  # bad input is still bad input
+
+
+def test_degraded_mode_covers_a_missing_file_and_leaves_good_files_alone(built, tmp_path, recwarn):
+    missing = open_filter(tmp_path / "absent.tamis", on_error="maybe")
+    assert missing.degraded and "cannot read artifact" in missing.info["reason"]
+    recwarn.clear()
+    good = open_filter(built["path"], on_error="maybe")
+    assert not good.degraded and good.info["degraded"] is False
+    assert not [w for w in recwarn if issubclass(w.category, RuntimeWarning)]
+    with pytest.raises(ValueError, match="on_error must be one of"):
+        open_filter(built["path"], on_error="ignore")
+
+
+# --- compatibility --------------------------------------------------------------------------------
+
+
+def test_a_newer_minor_with_unknown_fields_and_sections_opens(built, tmp_path):
+    header, sections = read_artifact(built["path"])
+    header["added_in_1_3"] = {"note": "a later writer's field"}
+    header["regions"][0]["later_region_field"] = [1, 2, 3]
+    sections = {**{k: np.array(v) for k, v in sections.items()}, "later.table": np.arange(5, dtype="<u2")}
+    path = tmp_path / "newer.tamis"
+    write_artifact(path, header, sections)
+    raw = bytearray(path.read_bytes())
+    raw[10:12] = struct.pack("<H", 3)  # minor version 3; no checksum covers the preamble's version
+    path.write_bytes(bytes(raw))
+    loaded = open_filter(path)
+    assert loaded.info["format"] == "1.3" and loaded.info["added_in_1_3"] == {"note": "a later writer's field"}
+    assert np.array_equal(loaded.contains_many(built["fresh"][:2000]), open_filter(built["path"]).contains_many(built["fresh"][:2000]))
+    raw[8:10] = struct.pack("<H", 2)
+    path.write_bytes(bytes(raw))
+    with pytest.raises(FilterLoadError, match="format 2.3 not supported"):
+        open_filter(path)
+
+
+# --- no build stack in the loader's process -----------------------------------------------------
+
+_BLOCKED_SCRIPT = """
+import importlib.abc, sys
+BLOCKED = {"polars", "lightgbm", "scipy", "prefect", "pandas", "pyarrow", "sklearn", "matplotlib"}
+
+class Refuse(importlib.abc.MetaPathFinder):
+    def find_spec(self, name, path=None, target=None):
+        if name.split(".")[0] in BLOCKED:
+            raise ImportError(f"{name} is blocked in this test")
+        return None
+
+sys.meta_path.insert(0, Refuse())
+from pipeline.loader import open_filter
+keys = [line.encode() for line in sys.stdin.read().split("\\n")]
+loaded = open_filter(sys.argv[1])
+many = loaded.contains_many(keys)
+one = [loaded.contains(k) for k in keys]
+assert many.tolist() == one
+print("".join("1" if a else "0" for a in many))
+"""
+
+
+def test_the_loader_works_where_the_build_stack_cannot_be_imported(built):
+    keys = [k.decode() for k in built["members"][:200] + built["fresh"][:800]]
+    expected = open_filter(built["path"]).contains_many(keys)
+    done = subprocess.run([sys.executable, "-c", _BLOCKED_SCRIPT, str(built["path"])], input="\n".join(keys),
+                          capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "".join("1" if a else "0" for a in expected)
+    # the blocker really blocks: importing the build stack in the same way fails
+    probe = _BLOCKED_SCRIPT.split("from pipeline.loader")[0] + "import polars\n"
+    assert subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True).returncode != 0

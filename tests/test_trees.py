@@ -336,3 +336,22 @@ def test_batch_speed_on_a_million_rows(fitted):
     rate = len(X) / (time.process_time() - start)
     print(f"score_batch: {rate:,.0f} rows/s (CPU time, 30 trees x 15 leaves)")
     assert rate > 200_000
+
+
+def test_feature_major_and_list_evaluators_agree(fitted):
+    _, forest, X = fitted
+    rows = np.vstack([X[:500], boundary_rows(forest, X)])
+    expected = score_batch(forest, rows)
+    np.testing.assert_array_equal(trees_module.score_columns(forest, np.ascontiguousarray(rows.T)), expected)
+    np.testing.assert_array_equal(trees_module.score_columns(forest, rows.T), expected)  # a strided view
+    assert [trees_module.score_values(forest, row.tolist()) for row in rows] == expected.tolist()
+    with pytest.raises(ValueError, match=r"shape \(9, n\)"):
+        trees_module.score_columns(forest, rows)
+
+
+@pytest.mark.parametrize("every", [1, 2, 100])
+def test_dropping_finished_walks_does_not_change_leaves(fitted, monkeypatch, every):
+    booster, forest, X = fitted
+    monkeypatch.setattr(trees_module, "COMPACT_LEVELS", every)
+    again = Forest.from_parts(forest.meta(), forest.sections())
+    np.testing.assert_array_equal(leaf_indices(again, X), booster.predict(X, pred_leaf=True))

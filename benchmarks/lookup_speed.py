@@ -1,0 +1,220 @@
+"""Lookup speed of the loader on the demo artifact, against a plain Bloom filter.
+
+Run: .venv/bin/python benchmarks/lookup_speed.py [--artifact PATH] [--members N] [--non-members N]
+                                                 [--keys N] [--budgets 120,240,480 | none]
+
+Builds the Emberfall demo corpus (pipeline.demo, seeded) and, through the stage functions (not the
+CLI), one artifact per query-cost budget (ModelSettings.max_nodes_per_key), unless --artifact names
+the one to measure. Then, in one run, it prints:
+
+1. batch `contains_many` of --keys keys (held-out non-members and members, shuffled) in keys/s;
+2. single-key `contains`, p50 and p99 latency;
+3. the same keys through a plain Bloom filter (`pipeline.bloom`) holding the same members at the
+   same target false-positive rate: the baseline every figure is divided by;
+4. the batch profile: features, trees, hashing and probes, each on its own;
+5. the curve of artifact bytes against batch lookup speed over the budgets.
+
+Every time is given as CPU seconds of this process (time.process_time) and as wall seconds: on a
+shared machine the CPU figure is the steadier one. Each batch figure is the best of --repeat runs.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import tempfile
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+from pipeline.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_slices
+from pipeline.config import load_config
+from pipeline.corpus import load_corpus
+from pipeline.demo import write_demo_corpus
+from pipeline.features import default_feature_spec, featurize, featurize_columns
+from pipeline.filters import build_filters
+from pipeline.loader import MembershipFilter, open_filter, pack_batch
+from pipeline.model import fit_model
+from pipeline.package import package_artifact
+from pipeline.regions import plan_regions, region_of
+from pipeline.trees import score_batch, score_columns
+
+DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.toml"
+# Single-key latencies are sampled over this many keys (enough for a stable p99).
+SINGLE_KEYS = 20_000
+
+
+@dataclasses.dataclass(frozen=True)
+class Timing:
+    cpu: float
+    wall: float
+
+    def per_key_us(self, keys: int) -> str:
+        return f"{self.cpu / keys * 1e6:7.3f} us/key CPU ({self.wall / keys * 1e6:7.3f} wall)"
+
+
+def best_of(repeat: int, run: Callable[[], object]) -> Timing:
+    """The smallest CPU and wall time of `repeat` runs (each minimum taken on its own)."""
+    cpu, wall = [], []
+    for _ in range(repeat):
+        c, w = time.process_time(), time.perf_counter()
+        run()
+        cpu.append(time.process_time() - c)
+        wall.append(time.perf_counter() - w)
+    return Timing(min(cpu), min(wall))
+
+
+def build_artifact(corpus, X: dict, config, budget: int, path: Path) -> dict:
+    """The build flow's stages with the model's query-cost budget set to `budget`."""
+    settings = dataclasses.replace(config.model, max_nodes_per_key=budget)
+    target = config.target.fpr
+
+    def filter_bytes(member_scores, val_scores, val_weights) -> float:
+        return plan_regions(member_scores, val_scores, val_weights, target, config.regions).estimated_total_bits / 8
+
+    started = time.perf_counter()
+    choice = fit_model(X["members"], X["train"], corpus.train.counts.astype(np.float64), X["validation"],
+                       corpus.validation.counts.astype(np.float64), filter_bytes, settings)
+    member_scores = score_batch(choice.forest, X["members"])
+    plan = plan_regions(member_scores, score_batch(choice.forest, X["validation"]), corpus.validation.counts,
+                        target, config.regions)
+    filters = build_filters(corpus.members, region_of(member_scores, plan.boundaries), plan.fprs, config.filters.hash_seed)
+    package_artifact(path, feature_spec=default_feature_spec(), forest=choice.forest, boundaries=plan.boundaries,
+                     region_filters=filters, hash_seed=config.filters.hash_seed,
+                     provenance={"benchmark": "lookup_speed", "max_nodes_per_key": budget})
+    return {"budget": budget, "path": path, "trees": choice.trees, "seconds": time.perf_counter() - started}
+
+
+def query_keys(corpus, count: int, seed: int) -> list[bytes]:
+    """`count` lookups: held-out non-members and members in the corpus's proportions, shuffled."""
+    pool = corpus.heldout.keys + corpus.members
+    rng = np.random.default_rng(seed)
+    picked = rng.integers(0, len(pool), count) if count > len(pool) else rng.permutation(len(pool))[:count]
+    return [pool[i] for i in picked.tolist()]
+
+
+def single_key_latency(loaded, keys: list[bytes]) -> tuple[float, float]:
+    """p50 and p99 of one `contains` call, in microseconds (wall clock per call)."""
+    for key in keys[:200]:
+        loaded.contains(key)
+    spent = []
+    clock = time.perf_counter
+    for key in keys:
+        start = clock()
+        loaded.contains(key)
+        spent.append(clock() - start)
+    p50, p99 = np.percentile(spent, [50, 99]) * 1e6
+    return float(p50), float(p99)
+
+
+def plain_bloom(members: list[bytes], fpr: float, seed: int) -> BloomFilter:
+    bits = bloom_bits(len(members), fpr)
+    bloom = BloomFilter.empty(bits, bloom_hashes(bits, len(members)), seed)
+    bloom.insert(members)
+    return bloom
+
+
+def profile(loaded: MembershipFilter, keys: list[bytes], repeat: int) -> dict[str, Timing]:
+    """Each part of `contains_many` on its own, over the whole batch."""
+    packed = pack_batch(keys)
+    spec = loaded.feature_spec
+    columns = featurize_columns(packed.data, packed.offsets, spec)
+    scores = score_columns(loaded.forest, columns)
+    regions = region_of(scores, np.array(loaded.boundaries, dtype=np.int64))
+    in_bloom = np.flatnonzero(np.array([r.mode == "bloom" for r in loaded.regions])[regions])
+    starts, stops = packed.offsets[in_bloom], packed.offsets[in_bloom + 1]
+
+    def probes() -> None:
+        hashes = hash_slices(packed.buffer, starts, stops, loaded.hash_seed)
+        for index, region in enumerate(loaded.regions):
+            if region.mode == "bloom":
+                region.bloom.query_hashes(hashes.select(regions[in_bloom] == index))
+
+    return {
+        "pack keys": best_of(repeat, lambda: pack_batch(keys)),
+        "features": best_of(repeat, lambda: featurize_columns(packed.data, packed.offsets, spec)),
+        "trees": best_of(repeat, lambda: score_columns(loaded.forest, columns)),
+        "regions": best_of(repeat, lambda: region_of(scores, np.array(loaded.boundaries, dtype=np.int64))),
+        f"hashing + probes ({len(in_bloom) / len(keys):.0%} of keys in Bloom regions)": best_of(repeat, probes),
+    }
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--artifact", type=Path, help="measure this artifact (else the one built at the largest budget)")
+    parser.add_argument("--members", type=int, default=200_000)
+    parser.add_argument("--non-members", type=int, default=2_000_000)
+    parser.add_argument("--seed", type=int, default=7, help="demo corpus seed (tamis demo's default)")
+    parser.add_argument("--keys", type=int, default=1_000_000, help="keys in the batch measurement")
+    parser.add_argument("--curve-keys", type=int, default=200_000, help="keys per point of the bytes-speed curve")
+    parser.add_argument("--budgets", default="120,240,480", help="max_nodes_per_key values for the curve, or 'none'")
+    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--work", type=Path, help="folder for the corpus and artifacts (default: a temporary one)")
+    args = parser.parse_args()
+
+    work = args.work or Path(tempfile.mkdtemp(prefix="tamis-lookup-speed-"))
+    config = load_config(DEMO_CONFIG)
+    print(f"demo corpus: {args.members:,} members, {args.non_members:,} non-members, seed {args.seed} (in {work})")
+    members_path, lookups_path = write_demo_corpus(work / "corpus", args.members, args.non_members, args.seed)
+    corpus = load_corpus(members_path, lookups_path, config.corpus)
+    keys = query_keys(corpus, args.keys, args.seed)
+    target = config.target.fpr
+
+    budgets = [] if args.budgets == "none" else [int(b) for b in args.budgets.split(",")]
+    built = []
+    if budgets:
+        spec = default_feature_spec()
+        X = {name: featurize(part, spec) for name, part in
+             (("members", corpus.members), ("train", corpus.train.keys), ("validation", corpus.validation.keys))}
+        for budget in budgets:
+            built.append(build_artifact(corpus, X, config, budget, work / f"budget-{budget}.tamis"))
+            print(f"  built max_nodes_per_key={budget}: {built[-1]['trees']} trees in {built[-1]['seconds']:.0f} s")
+    path = args.artifact or (built[-1]["path"] if built else None)
+    if path is None:
+        parser.error("give --artifact or at least one budget to build")
+    loaded = open_filter(path)
+
+    bloom = plain_bloom(corpus.members, target, config.filters.hash_seed)
+    base = best_of(args.repeat, lambda: bloom.query(keys))
+    batch = best_of(args.repeat, lambda: loaded.contains_many(keys))
+    sample = keys[:SINGLE_KEYS]
+    p50, p99 = single_key_latency(loaded, sample)
+    b50, b99 = single_key_latency(bloom, sample)
+    size = path.stat().st_size
+
+    forest = loaded.forest
+    print(f"\nartifact {path}: {size:,} bytes, {forest.trees} trees of up to {forest.max_splits + 1} leaves, "
+          f"{len(loaded.regions)} regions")
+    print(f"plain Bloom filter at {target:g}: {bloom.nbytes:,} bytes, {bloom.hashes} probes; "
+          f"artifact / Bloom bytes = {size / bloom.nbytes:.3f}")
+    print(f"\nbatch of {len(keys):,} keys (best of {args.repeat}):")
+    print(f"  contains_many  {len(keys) / batch.cpu:12,.0f} keys/s CPU ({len(keys) / batch.wall:12,.0f} wall)   "
+          f"{batch.per_key_us(len(keys))}")
+    print(f"  plain Bloom    {len(keys) / base.cpu:12,.0f} keys/s CPU ({len(keys) / base.wall:12,.0f} wall)   "
+          f"{base.per_key_us(len(keys))}")
+    print(f"  ratio artifact / Bloom speed: {base.cpu / batch.cpu:.3f} (CPU), {base.wall / batch.wall:.3f} (wall)")
+    print(f"\nsingle key, {len(sample):,} calls (wall clock per call):")
+    print(f"  contains       p50 {p50:7.1f} us   p99 {p99:7.1f} us")
+    print(f"  plain Bloom    p50 {b50:7.1f} us   p99 {b99:7.1f} us   (ratio p50 {p50 / b50:.1f})")
+    print(f"\nprofile of contains_many's parts over the same {len(keys):,} keys (best of {args.repeat}):")
+    for part, timing in profile(loaded, keys, args.repeat).items():
+        print(f"  {part:58s} {timing.per_key_us(len(keys))}")
+
+    if built:
+        print(f"\nbytes against batch speed ({args.curve_keys:,} keys each, best of {args.repeat}; Bloom = "
+              f"{bloom.nbytes:,} bytes at {len(keys) / base.cpu:,.0f} keys/s CPU):")
+        print(f"  {'max_nodes_per_key':>17s} {'trees':>5s} {'bytes':>9s} {'/ Bloom':>8s} {'keys/s CPU':>12s} {'/ Bloom':>8s}")
+        few = keys[: args.curve_keys]
+        for row in built:
+            point = open_filter(row["path"])
+            timing = best_of(args.repeat, lambda: point.contains_many(few))
+            rate = len(few) / timing.cpu
+            point_bytes = row["path"].stat().st_size
+            print(f"  {row['budget']:>17d} {row['trees']:>5d} {point_bytes:>9,d} {point_bytes / bloom.nbytes:>8.3f} "
+                  f"{rate:>12,.0f} {rate / (len(keys) / base.cpu):>8.3f}")
+
+
+if __name__ == "__main__":
+    main()

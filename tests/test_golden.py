@@ -1,0 +1,30 @@
+"""Golden bytes: a tiny fixed corpus built stage by stage gives an artifact with a pinned digest.
+
+If this test fails, the bytes of an artifact changed for the same inputs: the container layout,
+the header, the feature values, the trees LightGBM grows, the region plan or the filters. When
+the change is deliberate, bump FORMAT_MINOR or FORMAT_MAJOR (pipeline/artifact.py) or
+FEATURES_VERSION as the change requires, and record the new digest here.
+"""
+
+from __future__ import annotations
+
+import xxhash
+
+from golden_build import build_golden
+from pipeline.loader import open_filter
+
+# SOURCE_DATE_EPOCH for the build time: 2026-12-01T00:00:00Z.
+BUILD_EPOCH = "1796083200"
+# xxh3-64 of the artifact, recorded with LightGBM 4.7.0 and numpy 2.4 when this test was written.
+GOLDEN_DIGEST = "9ed0afe95dbf7531"
+
+
+def test_the_fixed_build_has_the_golden_digest(tmp_path, monkeypatch):
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", BUILD_EPOCH)
+    path = build_golden(tmp_path)
+    loaded = open_filter(path)
+    # the build is only worth pinning if it holds a forest and Bloom filters
+    assert loaded.forest.trees > 0
+    assert "bloom" in {region["mode"] for region in loaded.info["regions"]}
+    assert loaded.info["provenance"]["built_at"] == "2026-12-01T00:00:00Z"
+    assert xxhash.xxh3_64_hexdigest(path.read_bytes()) == GOLDEN_DIGEST
