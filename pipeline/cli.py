@@ -1,7 +1,8 @@
 """The `tamis` command line.
 
 Exit codes: 0 done (published), 1 refused by the gate, 2 bad input (one line on stderr says what,
-where and how to fix it).
+where and how to fix it), 3 the build failed inside a stage (a line names the stage and the error,
+the traceback follows; nothing was published).
 """
 
 from __future__ import annotations
@@ -11,13 +12,14 @@ import json
 import os
 import sys
 import time
+import traceback
 from importlib import resources
 from pathlib import Path
 
 from pipeline import publish
 from pipeline.errors import BadInput
 
-EXIT_PUBLISHED, EXIT_REFUSED, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_PUBLISHED, EXIT_REFUSED, EXIT_BAD_INPUT, EXIT_FAILED = 0, 1, 2, 3
 
 # Prefect settings for a quiet, offline, embedded run; a user's own environment wins.
 PREFECT_DEFAULTS = {
@@ -27,20 +29,14 @@ PREFECT_DEFAULTS = {
     "PREFECT_LOGGING_TO_API_ENABLED": "false",
 }
 
+# A manual build reports its own progress and failures; Prefect's console logs (a task's failure
+# with its traceback, printed twice) would only repeat them, so they stay off the terminal.
+PREFECT_BUILD_DEFAULTS = {**PREFECT_DEFAULTS, "PREFECT_LOGGING_LEVEL": "CRITICAL"}
 
-def _prepare_prefect() -> None:
-    for name, value in PREFECT_DEFAULTS.items():
+
+def _prepare_prefect(defaults: dict[str, str] = PREFECT_DEFAULTS) -> None:
+    for name, value in defaults.items():
         os.environ.setdefault(name, value)
-
-
-def _stage_printer(stream=sys.stderr):
-    """Progress on stderr: one line per stage with its elapsed time."""
-
-    def progress(stage: str, event: str, seconds: float) -> None:
-        if event == "done":
-            print(f"  {stage:<9} {seconds:7.1f} s", file=stream, flush=True)
-
-    return progress
 
 
 def _demo_config_path() -> Path:
@@ -48,15 +44,45 @@ def _demo_config_path() -> Path:
 
 
 def _run_build(config) -> int:
-    _prepare_prefect()
-    from flows.build import build_flow
+    _prepare_prefect(PREFECT_BUILD_DEFAULTS)
+    from flows.build import BuildFailed, build_flow
+    from pipeline.progress import progress_display
 
     started = time.perf_counter()
-    print("building (stage, seconds):", file=sys.stderr)
-    outcome = build_flow(config, progress=_stage_printer())
+    try:
+        with progress_display(sys.stderr) as progress:
+            outcome = build_flow(config, progress=progress)
+    except BuildFailed as failure:
+        print(failure_text(failure, config.store.path), file=sys.stderr, end="")
+        return EXIT_FAILED
     print(summary_text(outcome.report, outcome.folder), end="")
+    print(f"report page: {outcome.page}")
     print(f"total {time.perf_counter() - started:.1f} s", file=sys.stderr)
     return EXIT_PUBLISHED if outcome.published else EXIT_REFUSED
+
+
+def failure_text(failure, store: Path) -> str:
+    """What a failed build prints: the stage and the error first, what is in service, the traceback."""
+    try:
+        current = publish.current_version(store)
+    except publish.StoreError:
+        current = None
+    kept = f"version {current} stays current" if current is not None else "the store has no current version"
+    details = "".join(traceback.format_exception(failure.error))
+    return f"tamis: the build failed: {failure}; nothing was published ({kept})\n{details}"
+
+
+def drift_text(drift: dict) -> str:
+    """One line on the version in service against today's corpus."""
+    if drift["status"] == "none":
+        return "  in service: none yet"
+    if drift["status"] == "unreadable":
+        return f"  in service: {drift['error']}"
+    return (
+        f"  in service: version {drift['current_version']} misses {drift['members_missed']:,} of today's members "
+        f"({drift['members_missed_share']:.2%}); its held-out FPR {drift['heldout_fpr']:.4%} "
+        f"(upper bound {drift['heldout_fpr_upper']:.4%})"
+    )
 
 
 def summary_text(report: dict, folder: Path) -> str:
@@ -74,6 +100,8 @@ def summary_text(report: dict, folder: Path) -> str:
         f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
         f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
     ]
+    if "drift" in report:
+        lines.append(drift_text(report["drift"]))
     lines += [f"  refused: {reason}" for reason in report["gate"]["reasons"]]
     return "\n".join(lines) + "\n"
 
@@ -109,6 +137,7 @@ def cmd_build(args) -> int:
         },
         target={"fpr": args.target_fpr},
         store={"path": Path(args.store).resolve() if args.store else None},
+        gate={"max_size_growth": 0.0, "max_member_drop": 0.0} if args.no_change_limits else {},
     )
     return _run_build(config)
 
@@ -168,6 +197,11 @@ def show_text(path: Path, info: dict, report: dict | None) -> str:
     text = "\n".join(lines) + "\n"
     if report is not None:
         text += summary_text(report, path.parent) + f"report: {path.with_name(publish.REPORT_NAME)}\n"
+    from pipeline.report_page import REPORT_PAGE_NAME
+
+    page = path.with_name(REPORT_PAGE_NAME)
+    if page.is_file():
+        text += f"report page: {page}\n"
     return text
 
 
@@ -196,6 +230,13 @@ def cmd_versions(args) -> int:
     return 0
 
 
+def cmd_schedule(args) -> int:
+    _prepare_prefect()
+    from flows.nightly import main_schedule
+
+    return main_schedule(Path(args.config))
+
+
 def cmd_rollback(args) -> int:
     version = publish.rollback(Path(args.store))
     print(f"version {version} is current")
@@ -212,6 +253,7 @@ EXAMPLES = {
     "show": "examples:\n  tamis show store\n  tamis show store/3/artifact.tamis",
     "versions": "example:\n  tamis versions /srv/filters",
     "rollback": "example:\n  tamis rollback /srv/filters",
+    "schedule": "example:\n  tamis schedule configs/nightly.example.toml",
 }
 
 
@@ -238,6 +280,9 @@ def make_parser() -> argparse.ArgumentParser:
     build.add_argument("--target-fpr", type=float, help="the false-positive rate to meet, e.g. 0.01")
     build.add_argument("--store", help="store folder to publish into")
     build.add_argument("--key-encoding", choices=("utf-8", "bytes"), help="read keys as UTF-8 text (default) or raw bytes")
+    build.add_argument("--no-change-limits", action="store_true",
+                       help="for this build, turn off the gate's limits on change against the version in service "
+                            "(max_size_growth, max_member_drop): for a deliberate large change")
     build.set_defaults(run=cmd_build)
 
     lookup = command("lookup", "answer keys: KEY<TAB>maybe or KEY<TAB>no, in input order")
@@ -256,6 +301,10 @@ def make_parser() -> argparse.ArgumentParser:
     rollback = command("rollback", "make the version before CURRENT current again")
     rollback.add_argument("store")
     rollback.set_defaults(run=cmd_rollback)
+
+    schedule = command("schedule", "serve the nightly build on the config's cron through Prefect (until Ctrl-C)")
+    schedule.add_argument("config", help="TOML build configuration with a [schedule] table")
+    schedule.set_defaults(run=cmd_schedule)
     return parser
 
 

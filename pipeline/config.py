@@ -61,15 +61,35 @@ class TargetSettings:
 
 @dataclass(frozen=True)
 class GateSettings:
+    """The rules a build must pass to be published; each refusal names its rule.
+
+    Every limit below reads 0 as "off". The two change limits compare the new artifact with the
+    version in service (`STORE/CURRENT`) and apply only when there is one that opens.
+    """
+
     # the confidence of the one-sided upper bound on the held-out false-positive rate
     confidence: float = field(default=0.95, metadata={"range": (0.5, 0.999999)})
-    # the gate passes while the upper bound is at most target * (1 + fpr_slack)
+    # rule fpr_upper: the gate passes while the upper bound is at most target * (1 + fpr_slack)
     fpr_slack: float = field(default=0.0, metadata={"range": (0.0, 10.0)})
     # the build aims below the target by this many standard errors of the held-out estimate, on top
     # of the confidence bound, so that a build on target passes the gate with high probability
     aim_sigmas: float = field(default=2.0, metadata={"range": (0.0, 10.0)})
-    # 0 means no limit
+    # rule min_heldout, checked before training: the held-out part must carry at least this many
+    # draws (its effective sample size when the corpus has counts), and never fewer than the target
+    # needs to be bounded at all (pipeline.verify.needed_heldout); 0 asks for no more than that
+    min_heldout: int = field(default=0, metadata={"range": (0, 1 << 40)})
+    # rule max_artifact_bytes: the largest artifact file accepted
     max_artifact_bytes: int = field(default=0, metadata={"range": (0, 1 << 40)})
+    # rule max_size_growth: the artifact may be at most this share larger than the version in
+    # service (0.5: at most +50% bytes). On by default: nightly growth is a few percent, and a ban
+    # wave of a third more members still passes, while a model that stopped separating (the
+    # artifact falling back towards a plain Bloom filter, about twice the learned size in the
+    # demo) is caught before it ships.
+    max_size_growth: float = field(default=0.5, metadata={"range": (0.0, 1000.0)})
+    # rule max_member_drop: the member count may fall by at most this share against the version in
+    # service (0.2: at most 20% fewer). On by default: a filter's "no" is trusted, so a truncated
+    # export would let every dropped member through unchecked; unbans shrink a list slowly.
+    max_member_drop: float = field(default=0.2, metadata={"range": (0.0, 1.0)})
 
 
 @dataclass(frozen=True)

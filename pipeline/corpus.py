@@ -3,7 +3,18 @@
 Sources are one key a line (any extension but the table ones), or a table: CSV (`.csv`), Parquet
 (`.parquet`, `.pq`) or NDJSON (`.ndjson`, `.jsonl`) with a `key` column and, for non-members, an
 optional `count` column of lookups. Keys become bytes: UTF-8 of the text unless the corpus is read
-with key_encoding = "bytes" (one key a line only, then any byte but newline is allowed).
+with key_encoding = "bytes" (one-key-a-line files, where any byte but newline is allowed, and
+Parquet binary columns). An empty file holds no keys.
+
+Every refusal is a BadInput naming the file, the place and the fix. Places count from 1: "line N" of
+a one-key-a-line or NDJSON file, "row N (line N+1)" of a CSV (its header is line 1; the line is
+exact unless a quoted key spans lines), "row N" of a Parquet table. A path that cannot be opened
+for good (missing, a folder, no permission) is bad input; any other OSError (an I/O error of a
+network filesystem, say) propagates, so that the flow may retry the read.
+
+Before reading, the memory the build will need is estimated from the file sizes
+(`estimate_build_memory`), and a corpus that cannot fit is refused at once rather than after
+minutes of reading and training.
 
 Non-members are split by a seeded xxh3-64 hash of the key, so a key stays in the same part from one
 nightly build to the next (invariant 3): `train` teaches the model, `validation` gives the region
@@ -12,6 +23,13 @@ plan its non-member shares, `heldout` only measures the false-positive rate.
 
 from __future__ import annotations
 
+import csv
+import errno
+import io
+import json
+import math
+import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -26,6 +44,43 @@ TABLE_SUFFIXES = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".ndjs
 
 # The hash split draws a bucket in [0, 10,000) per key: shares are honoured to 0.01%.
 _SPLIT_BUCKETS = 10_000
+
+# Counts are parsed as float64; every whole number up to 2^53 is exact there, larger ones are not
+# (and no real lookup log holds 9 quadrillion lookups of one key).
+MAX_COUNT = 2**53
+
+# Some editors start UTF-8 text with a byte-order mark; it is not part of the first key.
+UTF8_BOM = b"\xef\xbb\xbf"
+
+# Failures to open that no retry can cure, with the fix each needs; other errno values propagate.
+_OPEN_PROBLEMS = {
+    errno.ENOENT: "no such file; check the path",
+    errno.ENOTDIR: "a part of the path is a file, not a folder; check the path",
+    errno.EISDIR: "is a folder, not a file; give the path of the key file inside it",
+    errno.EACCES: "permission denied; make the file readable by the user running the build",
+    errno.EPERM: "permission denied; make the file readable by the user running the build",
+    errno.ELOOP: "too many levels of symbolic links; check the path",
+    errno.ENAMETOOLONG: "the path is too long; check it",
+}
+
+# Memory a build holds at its peak, measured with `/usr/bin/time -v` (maximum resident set) on two
+# Emberfall demo corpora through `tamis build` (keys of 12 bytes on average; [model] leaves = [15],
+# learning_rates = [0.3], max_trees = 20): 20,000 + 200,000 keys peaked at 479 MiB and 60,000 +
+# 600,000 keys at 757 MiB, a slope of 662 bytes a key (its bytes objects, a float32 row of 89
+# features, its share of the training set and the lookup tables) over a base of 357 MB (Python,
+# polars, LightGBM and Prefect's embedded server). Rounded up here, for the estimate informs a
+# refusal: a build is refused only when even this estimate exceeds the memory available. Key
+# length barely counts: 220,000 keys of 112 bytes peaked at 385 MiB against 387 MiB for the same
+# keys of 12 bytes (a build without Prefect, tests/tamis_testing.py's small model), so the
+# estimate counts keys only.
+BUILD_BYTES_PER_KEY = 700
+BUILD_BASE_BYTES = 400 * 2**20
+# Rows of a text source are estimated from the line ends in its first MiB.
+_SAMPLE_BYTES = 1 << 20
+
+# Overrides the available memory, in bytes or with a K, M, G or T suffix (powers of 1024).
+MEMORY_LIMIT_ENV = "TAMIS_MEMORY_LIMIT"
+_SIZE_SUFFIXES = {"": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
 
 
 @dataclass(frozen=True)
@@ -57,8 +112,147 @@ class RawSource:
     rows: int
 
 
+# ---------------------------------------------------------------------------------------------------
+# Opening and memory, before any key is read
+# ---------------------------------------------------------------------------------------------------
+
+
 def _format_of(path: Path) -> str:
     return TABLE_SUFFIXES.get(path.suffix.lower(), "lines")
+
+
+def require_readable(path: Path) -> None:
+    """Raise BadInput when `path` cannot be opened for a reason no retry cures."""
+    try:
+        with open(path, "rb"):
+            pass
+    except OSError as exc:
+        if exc.errno not in _OPEN_PROBLEMS:
+            raise
+        raise BadInput(f"cannot read {path}: {_OPEN_PROBLEMS[exc.errno]}") from None
+
+
+@dataclass(frozen=True)
+class MemoryEstimate:
+    """What a build over some source files will hold at its peak, estimated from their sizes."""
+
+    keys: int
+    needed_bytes: int
+
+
+def estimate_rows(path: Path) -> int:
+    """Rows of a source, without reading it: Parquet's own row count, or the line ends of a text
+    file's first MiB scaled to its size."""
+    size = path.stat().st_size
+    if size == 0:
+        return 0
+    if _format_of(path) == "parquet":
+        try:
+            return int(pl.scan_parquet(path).select(pl.len()).collect().item())
+        except pl.exceptions.PolarsError:
+            return 0  # not Parquet at all: reading it says so
+    with open(path, "rb") as handle:
+        sample = handle.read(_SAMPLE_BYTES)
+    lines = sample.count(b"\n") + (not sample.endswith(b"\n"))
+    return lines if len(sample) == size else math.ceil(lines * size / len(sample))
+
+
+def estimate_build_memory(paths: list[Path]) -> MemoryEstimate:
+    """Peak memory of a build over these sources: the measured base plus a cost per key."""
+    keys = sum(estimate_rows(path) for path in paths)
+    return MemoryEstimate(keys, BUILD_BASE_BYTES + keys * BUILD_BYTES_PER_KEY)
+
+
+def _parse_size(text: str) -> int:
+    match = re.fullmatch(r"\s*(\d+)\s*([KMGT]?)i?B?\s*", text, flags=re.IGNORECASE)
+    if not match:
+        raise BadInput(
+            f"environment variable {MEMORY_LIMIT_ENV}={text!r} is not a size; give bytes, or a number with "
+            f"K, M, G or T (e.g. 8G)"
+        )
+    return int(match[1]) * _SIZE_SUFFIXES[match[2].upper()]
+
+
+def _meminfo_available() -> int | None:
+    """MemAvailable of /proc/meminfo: the kernel's estimate of what can be allocated without swapping."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as handle:
+            for line in handle:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        return None
+    return None
+
+
+def _cgroup_available() -> int | None:
+    """What a cgroup v2 memory limit (a container's) still allows, when there is one."""
+    try:
+        limit = Path("/sys/fs/cgroup/memory.max").read_text().strip()
+        used = int(Path("/sys/fs/cgroup/memory.current").read_text())
+    except (OSError, ValueError):
+        return None
+    return None if limit == "max" else max(0, int(limit) - used)
+
+
+def available_memory() -> int:
+    """Bytes a build may use: TAMIS_MEMORY_LIMIT when set, else the smaller of MemAvailable and a
+    container's cgroup allowance, else the free pages (os.sysconf)."""
+    override = os.environ.get(MEMORY_LIMIT_ENV)
+    if override:
+        return _parse_size(override)
+    figures = [f for f in (_meminfo_available(), _cgroup_available()) if f is not None]
+    if figures:
+        return min(figures)
+    return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+
+
+def _gib(value: int) -> str:
+    return f"{value / 2**30:.1f} GiB"
+
+
+def check_sources(members_path: Path, non_members_path: Path) -> MemoryEstimate:
+    """Both sources open, and the build they make fits in memory; raises BadInput otherwise.
+
+    Cheap (file sizes and a 1 MiB sample), so a caller may run it before starting anything heavy.
+    """
+    paths = [members_path, non_members_path]
+    for path in paths:
+        require_readable(path)
+    estimate = estimate_build_memory(paths)
+    available = available_memory()
+    if estimate.needed_bytes > available:
+        raise BadInput(
+            f"{members_path} and {non_members_path} hold about {estimate.keys:,} keys (estimated from the file "
+            f"sizes); a build of them needs about {_gib(estimate.needed_bytes)} (about {BUILD_BYTES_PER_KEY} bytes "
+            f"a key), more than the {_gib(available)} of memory available; build on a larger machine or from a "
+            f"sample of the non-members (or set {MEMORY_LIMIT_ENV} to the memory the build may really use)"
+        )
+    return estimate
+
+
+# ---------------------------------------------------------------------------------------------------
+# Reading one source
+# ---------------------------------------------------------------------------------------------------
+
+
+def _line_of_offset(raw: bytes, offset: int) -> int:
+    return raw.count(b"\n", 0, offset) + 1
+
+
+def _first_invalid_utf8(keys: list[bytes]) -> int | None:
+    """Index of the first key that is not valid UTF-8, or None.
+
+    One decode of all keys joined by newlines: an ASCII separator never belongs to a multi-byte
+    sequence, so the decoder fails exactly when some key is invalid, inside the first such key.
+    """
+    joined = b"\n".join(keys)
+    try:
+        joined.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        ends = np.cumsum(np.fromiter((len(k) + 1 for k in keys), dtype=np.int64, count=len(keys)))
+        return int(np.searchsorted(ends, exc.start, side="right"))
+    return None
 
 
 def _read_lines(path: Path, raw: bytes, encoding: str) -> list[bytes]:
@@ -66,11 +260,12 @@ def _read_lines(path: Path, raw: bytes, encoding: str) -> list[bytes]:
         try:
             raw.decode("utf-8")
         except UnicodeDecodeError as exc:
-            line = raw.count(b"\n", 0, exc.start) + 1
             raise BadInput(
-                f"{path}: line {line} is not valid UTF-8 (byte {exc.start}); fix the key, or read keys as raw bytes "
-                f"with key_encoding = \"bytes\" (--key-encoding bytes)"
+                f"{path}: line {_line_of_offset(raw, exc.start)} is not valid UTF-8 (byte {exc.start}); fix the key, "
+                f"or read keys as raw bytes with key_encoding = \"bytes\" (--key-encoding bytes)"
             ) from None
+        if raw.startswith(UTF8_BOM):
+            raw = raw[len(UTF8_BOM) :]
     lines = raw.split(b"\n")
     if lines and lines[-1] == b"":
         lines.pop()
@@ -78,16 +273,111 @@ def _read_lines(path: Path, raw: bytes, encoding: str) -> list[bytes]:
     return [line[:-1] if line.endswith(b"\r") else line for line in lines]
 
 
-def _read_table(path: Path, kind: str, want_counts: bool) -> tuple[list[bytes], np.ndarray | None]:
+def _csv_problem(text: str) -> str | None:
+    """The first line of a CSV that Python's strict CSV reader rejects, or whose field count differs
+    from the header's; None when it finds nothing wrong."""
+    reader = csv.reader(io.StringIO(text, newline=""), strict=True)
+    width = None
+    while True:
+        start = reader.line_num + 1
+        try:
+            row = next(reader)
+        except StopIteration:
+            return None
+        except csv.Error as exc:
+            if "end of data" in str(exc):
+                return f"line {start}: a quoted field opened here is never closed; close the quote (write a quote inside a quoted field as \"\")"
+            return f"line {start}: {exc}; quote the whole field and write a quote inside it as \"\""
+        if width is None:
+            width = len(row)
+        elif row and len(row) != width:
+            return f"line {start} has {len(row)} fields where the header has {width}; quote fields that contain commas"
+
+
+def _ndjson_problem(text: str) -> str | None:
+    """The first line of an NDJSON file that is not a JSON object, or None."""
+    for number, line in enumerate(text.split("\n"), start=1):
+        if not line.strip():
+            continue
+        try:
+            value = json.loads(line)
+        except json.JSONDecodeError as exc:
+            return f"line {number} is not valid JSON ({exc.msg} at column {exc.colno}); write one JSON object a line"
+        if not isinstance(value, dict):
+            return f"line {number} holds a JSON {type(value).__name__}, not an object; write one object a line, like {{\"key\": \"...\"}}"
+    return None
+
+
+def _table_problem(path: Path, kind: str, error: Exception) -> str:
+    """Why polars could not read a table, with the line when the text shows it."""
+    said = str(error).splitlines()[0] if str(error) else type(error).__name__
+    if kind == "parquet":
+        return (
+            f"{path}: not a readable Parquet file ({said}); write it with a Parquet writer, or give it the "
+            f"suffix of its real format (.csv, .ndjson, or .txt for one key a line)"
+        )
+    raw = path.read_bytes()
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        return (
+            f"{path}: line {_line_of_offset(raw, exc.start)} is not valid UTF-8 (byte {exc.start}); a {kind} file "
+            f"holds text: fix the line, or give raw keys one a line (or in a Parquet binary column) read with "
+            f"key_encoding = \"bytes\""
+        )
+    found = _csv_problem(text) if kind == "csv" else _ndjson_problem(text)
+    if found:
+        return f"{path}: {found}"
+    return f"{path}: cannot read as {kind}: {said}; check that the file is {kind}"
+
+
+def _read_frame(path: Path, kind: str) -> pl.DataFrame:
     try:
         if kind == "csv":
-            frame = pl.read_csv(path, infer_schema_length=0)  # every column as text; counts parsed below
-        elif kind == "parquet":
-            frame = pl.read_parquet(path)
-        else:
-            frame = pl.read_ndjson(path)
-    except (pl.exceptions.PolarsError, OSError, ValueError) as exc:
-        raise BadInput(f"{path}: cannot read as {kind}: {str(exc).splitlines()[0]}") from None
+            return pl.read_csv(path, infer_schema_length=0)  # every column as text; counts parsed below
+        if kind == "parquet":
+            return pl.read_parquet(path)
+        return pl.read_ndjson(path)
+    except (pl.exceptions.PolarsError, ValueError) as exc:
+        raise BadInput(_table_problem(path, kind, exc)) from None
+
+
+def _place(path: Path, kind: str, row: int) -> str:
+    """Where key `row` (0-based) of a source is, in the words of the module docstring."""
+    if kind == "lines":
+        return f"line {row + 1}"
+    if kind == "csv":
+        return f"row {row + 1} (line {row + 2})"
+    if kind == "ndjson":
+        # polars skips blank lines: find the line of the row-th object
+        lines = path.read_bytes().split(b"\n")
+        filled = [number for number, line in enumerate(lines, start=1) if line.strip()]
+        return f"line {filled[row]}" if row < len(filled) else f"row {row + 1}"
+    return f"row {row + 1}"
+
+
+def _read_counts(path: Path, kind: str, column: pl.Series) -> np.ndarray:
+    """Lookup counts as int64; each must be a whole number from 1 to MAX_COUNT."""
+    if column.dtype == pl.Boolean or not (column.dtype.is_numeric() or column.dtype == pl.String):
+        raise BadInput(f"{path}: column `count` holds {column.dtype}; write counts as whole numbers of lookups")
+    values = column.cast(pl.Float64, strict=False)
+    bad = (values.is_null() | values.is_nan() | (values < 1) | (values > MAX_COUNT) | (values != values.floor())).fill_null(True)
+    if bad.any():
+        row = int(bad.arg_true()[0])
+        raise BadInput(
+            f"{path}: {_place(path, kind, row)} has count {column[row]!r}; counts must be whole numbers from 1 "
+            f"to 2^53 (drop the row of a key never looked up)"
+        )
+    return values.cast(pl.Int64).to_numpy()
+
+
+def _read_table(path: Path, kind: str, encoding: str, want_counts: bool) -> tuple[list[bytes], np.ndarray | None]:
+    if encoding == "bytes" and kind != "parquet":
+        raise BadInput(
+            f"{path}: key_encoding \"bytes\" reads one-key-a-line files and Parquet tables; a {kind} file holds text: "
+            f"use key_encoding = \"utf-8\", or convert the file"
+        )
+    frame = _read_frame(path, kind)
     if "key" not in frame.columns:
         raise BadInput(f"{path}: no `key` column (columns: {', '.join(frame.columns) or 'none'}); name the key column `key`")
     key_column = frame["key"]
@@ -95,53 +385,51 @@ def _read_table(path: Path, kind: str, want_counts: bool) -> tuple[list[bytes], 
         raise BadInput(f"{path}: column `key` holds {key_column.dtype}, expected text; write keys as strings")
     nulls = key_column.is_null()
     if nulls.any():
-        row = int(nulls.arg_true()[0]) + 1
-        raise BadInput(f"{path}: row {row} has no key (null); remove the row or give it a key")
+        place = _place(path, kind, int(nulls.arg_true()[0]))
+        raise BadInput(f"{path}: {place} has no key (null or an empty field); remove the row or give it a key")
     keys = key_column.cast(pl.Binary).to_list()
-    counts = _read_counts(path, frame["count"]) if want_counts and "count" in frame.columns else None
+    if key_column.dtype == pl.Binary and encoding == "utf-8":
+        bad = _first_invalid_utf8(keys)
+        if bad is not None:
+            raise BadInput(
+                f"{path}: {_place(path, kind, bad)} holds a key that is not valid UTF-8; fix the key, or read keys "
+                f"as raw bytes with key_encoding = \"bytes\" (--key-encoding bytes)"
+            )
+    counts = _read_counts(path, kind, frame["count"]) if want_counts and "count" in frame.columns else None
     return keys, counts
 
 
-def _read_counts(path: Path, column: pl.Series) -> np.ndarray:
-    """Lookup counts as int64; each must be a whole number >= 1."""
-    values = column.cast(pl.Float64, strict=False)
-    bad = values.is_null() | values.is_nan() | (values < 1) | (values != values.floor())
-    if bad.any():
-        row = int(bad.arg_true()[0])
+def _check_lengths(path: Path, kind: str, keys: list[bytes], max_key_bytes: int) -> None:
+    if not keys:
+        return
+    lengths = np.fromiter(map(len, keys), dtype=np.int64, count=len(keys))
+    if lengths.min() == 0:
+        raise BadInput(f"{path}: {_place(path, kind, int(np.argmin(lengths)))} has an empty key; remove it")
+    if lengths.max() > max_key_bytes:
+        where = int(np.argmax(lengths))
         raise BadInput(
-            f"{path}: row {row + 1} has count {column[row]!r}; counts must be whole numbers >= 1 (drop the row for keys never looked up)"
+            f"{path}: {_place(path, kind, where)} has a key of {lengths[where]} bytes, over max_key_bytes = {max_key_bytes}; "
+            f"raise corpus.max_key_bytes or shorten the key"
         )
-    return values.cast(pl.Int64).to_numpy()
 
 
 def read_source(path: Path, settings: CorpusSettings, want_counts: bool) -> RawSource:
     """Keys (and counts) of one source file, checked for empty, over-long and undecodable keys."""
+    require_readable(path)
     kind = _format_of(path)
+    if path.stat().st_size == 0:
+        return RawSource([], None, 0)
     if kind == "lines":
-        try:
-            raw = path.read_bytes()
-        except OSError as exc:
-            raise BadInput(f"cannot read {path}: {exc.strerror}; check the path and its permissions") from None
-        keys, counts = _read_lines(path, raw, settings.key_encoding), None
-        unit = "line"
+        keys, counts = _read_lines(path, path.read_bytes(), settings.key_encoding), None
     else:
-        if not path.is_file():
-            raise BadInput(f"cannot read {path}: no such file; check the path")
-        if settings.key_encoding == "bytes":
-            raise BadInput(f"{path}: key_encoding \"bytes\" applies to one-key-a-line files only; tables hold text keys")
-        keys, counts = _read_table(path, kind, want_counts)
-        unit = "row"
-    lengths = np.fromiter(map(len, keys), dtype=np.int64, count=len(keys))
-    if len(keys) and lengths.min() == 0:
-        where = int(np.argmin(lengths)) + 1
-        raise BadInput(f"{path}: {unit} {where} has an empty key; remove it")
-    if len(keys) and lengths.max() > settings.max_key_bytes:
-        where = int(np.argmax(lengths)) + 1
-        raise BadInput(
-            f"{path}: {unit} {where} has a key of {lengths.max()} bytes, over max_key_bytes = {settings.max_key_bytes}; "
-            f"raise corpus.max_key_bytes or shorten the key"
-        )
+        keys, counts = _read_table(path, kind, settings.key_encoding, want_counts)
+    _check_lengths(path, kind, keys, settings.max_key_bytes)
     return RawSource(keys, counts, len(keys))
+
+
+# ---------------------------------------------------------------------------------------------------
+# The corpus: dedupe, conflicts, split
+# ---------------------------------------------------------------------------------------------------
 
 
 def merge_duplicates(keys: list[bytes], counts: np.ndarray) -> tuple[list[bytes], np.ndarray]:
@@ -163,6 +451,7 @@ def _subset(keys: list[bytes], counts: np.ndarray, mask: np.ndarray) -> KeySet:
 
 
 def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSettings) -> Corpus:
+    check_sources(members_path, non_members_path)
     members_raw = read_source(members_path, settings, want_counts=False)
     non_raw = read_source(non_members_path, settings, want_counts=True)
     if members_raw.rows == 0:
@@ -194,6 +483,19 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
     bucket = split_buckets(non_keys, settings.split_seed)
     heldout_end = round(settings.heldout_share * _SPLIT_BUCKETS)
     validation_end = heldout_end + round(settings.validation_share * _SPLIT_BUCKETS)
+    parts = {
+        "heldout": _subset(non_keys, non_counts, bucket < heldout_end),
+        "validation": _subset(non_keys, non_counts, (bucket >= heldout_end) & (bucket < validation_end)),
+        "train": _subset(non_keys, non_counts, bucket >= validation_end),
+    }
+    # the held-out part's size is judged against the target by the flow; the model needs the others
+    for name in ("train", "validation"):
+        if not parts[name].keys:
+            raise BadInput(
+                f"{non_members_path}: the hash split of its {len(non_keys):,} distinct non-members leaves no {name} keys "
+                f"(corpus.validation_share = {settings.validation_share}, heldout_share = {settings.heldout_share}); "
+                f"give more non-members"
+            )
     stats = {
         "member_rows": members_raw.rows,
         "member_duplicates": members_raw.rows - len(members),
@@ -201,11 +503,4 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
         "non_member_duplicates": non_raw.rows - len(non_keys) - conflicts,
         "conflicts": conflicts,
     }
-    return Corpus(
-        members=members,
-        heldout=_subset(non_keys, non_counts, bucket < heldout_end),
-        validation=_subset(non_keys, non_counts, (bucket >= heldout_end) & (bucket < validation_end)),
-        train=_subset(non_keys, non_counts, bucket >= validation_end),
-        has_counts=has_counts,
-        stats=stats,
-    )
+    return Corpus(members=members, has_counts=has_counts, stats=stats, **parts)

@@ -1,5 +1,6 @@
-"""The build report (`report.json` beside each artifact): what was built, how big, how good, and
-why the gate decided as it did. Field names follow the contract in the design notes (§4)."""
+"""The build report (`report.json` beside each artifact): what was built, how big, how good, how the
+version in service fares on today's corpus (`drift`), and why the gate decided as it did. Field
+names follow the contract in the design notes (§4); `gate.checks` lists every rule's verdict."""
 
 from __future__ import annotations
 
@@ -8,7 +9,8 @@ import math
 from pipeline.bloom import bloom_bits, lower_bound_bits
 from pipeline.config import BuildConfig
 from pipeline.corpus import Corpus
-from pipeline.verify import Verification
+from pipeline.drift import Drift
+from pipeline.verify import GateCheck, Verification, refusal_reasons
 
 
 def _region_rows(plan, filters) -> list[dict]:
@@ -38,7 +40,8 @@ def build_report(
     filters,
     verification: Verification,
     total_bytes: int,
-    reasons: list[str],
+    checks: list[GateCheck],
+    drift: Drift,
     version: int | None,
     timings: dict,
 ) -> dict:
@@ -47,6 +50,7 @@ def build_report(
     bloom_bytes = math.ceil(bloom_bits(members, target) / 8)
     non_members = len(corpus.train.keys) + len(corpus.validation.keys) + len(corpus.heldout.keys)
     lookups = corpus.train.lookups + corpus.validation.lookups + corpus.heldout.lookups
+    reasons = refusal_reasons(checks)
     return {
         "version": version,
         "build_id": provenance["build_id"],
@@ -79,6 +83,7 @@ def build_report(
         "model": {"trees": choice.trees, "params": choice.params, "candidates": choice.candidates},
         "regions": _region_rows(plan, filters),
         "expected_fpr": plan.expected_fpr,
-        "gate": {"passed": not reasons, "reasons": reasons},
+        "drift": drift.as_report(),
+        "gate": {"passed": not reasons, "reasons": reasons, "checks": [check.as_report() for check in checks]},
         "timings": timings,
     }

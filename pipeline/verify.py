@@ -3,6 +3,15 @@ false-positive rate on held-out non-members, and decide the gate.
 
 The held-out keys were never used for training, model choice or region choice (invariant 3), so the
 rate measured here is an honest estimate of the rate the service will see on lookups drawn like them.
+
+Gate rules (each refusal starts with the rule's name; the thresholds are `config.GateSettings`):
+
+    min_heldout          before training: the held-out part can bound the rate at the target at all
+    false_negatives      every member answers "maybe"
+    fpr_upper            the held-out rate's upper confidence bound <= target * (1 + fpr_slack)
+    max_artifact_bytes   the artifact file is at most this large
+    max_size_growth      at most this share more bytes than the version in service
+    max_member_drop      at most this share fewer members than the version in service
 """
 
 from __future__ import annotations
@@ -14,8 +23,10 @@ from pathlib import Path
 import numpy as np
 from scipy import stats
 
+from pipeline.config import GateSettings
 from pipeline.corpus import KeySet
-from pipeline.loader import open_filter
+from pipeline.errors import BadInput
+from pipeline.loader import MembershipFilter, open_filter
 
 
 @dataclass(frozen=True)
@@ -109,6 +120,40 @@ def needed_heldout(target: float, confidence: float) -> int:
     return math.ceil(math.log(1 - confidence) / math.log1p(-target))
 
 
+def heldout_sample(heldout: KeySet, weighted: bool) -> float:
+    """How many independent draws the held-out part is worth: its keys, or with lookup counts
+    their effective sample size (the rate is by lookups, so heavy keys weigh more)."""
+    return effective_sample_size(heldout.counts) if weighted else float(len(heldout.keys))
+
+
+def require_heldout(heldout: KeySet, weighted: bool, target: float, settings: GateSettings, heldout_share: float) -> float:
+    """Rule min_heldout, before any training: stop with BadInput when the held-out part is too
+    small to show that the target is met; otherwise return its sample size (`heldout_sample`)."""
+    sample = heldout_sample(heldout, weighted)
+    statistical = needed_heldout(target, settings.confidence)
+    if sample >= max(statistical, settings.min_heldout):
+        return sample
+    if weighted:
+        have = (
+            f"{len(heldout.keys):,} held-out keys with lookup counts, worth an effective sample of {sample:,.1f} draws "
+            f"(Kish: (sum of counts)^2 / sum of squared counts; a few heavy keys weigh like few draws)"
+        )
+        unit = "draws"
+    else:
+        have = f"{len(heldout.keys):,} held-out keys"
+        unit = "keys"
+    need = (
+        f"a target of {target:.4%} at {settings.confidence:.0%} confidence needs at least {statistical:,} {unit} "
+        f"(with fewer, even a filter without a false positive cannot be shown to meet it)"
+    )
+    if settings.min_heldout > statistical:
+        need += f", and gate.min_heldout asks for {settings.min_heldout:,}"
+    raise BadInput(
+        f"min_heldout: the corpus has {have}; {need}. To fix: give more non-members (the sample grows about in "
+        f"proportion), raise corpus.heldout_share (now {heldout_share:g}), or raise the target"
+    )
+
+
 @dataclass(frozen=True)
 class Verification:
     false_negatives: int
@@ -116,26 +161,128 @@ class Verification:
     heldout: Measurement
 
 
-def verify_artifact(path: Path, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Verification:
-    """Open `path` with the loader a service uses; query every member and every held-out key."""
-    loaded = open_filter(path)
+def check_filter(loaded: MembershipFilter, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Verification:
+    """Query every member and every held-out key through an opened filter."""
     member_answers = loaded.contains_many(members)
     false_negatives = int(len(members) - member_answers.sum())
     measurement = measure_fpr(loaded.contains_many(heldout.keys), heldout, weighted, confidence)
     return Verification(false_negatives, len(members), measurement)
 
 
-def gate_reasons(verification: Verification, target: float, fpr_slack: float, total_bytes: int, max_bytes: int) -> list[str]:
-    """Why the gate refuses the artifact; an empty list means it passes."""
-    reasons = []
-    if verification.false_negatives:
-        reasons.append(f"false_negatives: {verification.false_negatives} members answered no")
+def verify_artifact(path: Path, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Verification:
+    """Open `path` with the loader a service uses; query every member and every held-out key."""
+    return check_filter(open_filter(path), members, heldout, weighted, confidence)
+
+
+@dataclass(frozen=True)
+class Baseline:
+    """The version in service, as the change limits see it."""
+
+    version: int
+    total_bytes: int
+    members: int
+
+
+@dataclass(frozen=True)
+class GateCheck:
+    """One gate rule's verdict. `limit` is None when the rule is off or has nothing to compare with;
+    `detail` says why it refused, or what it found."""
+
+    rule: str
+    passed: bool
+    value: float | None
+    limit: float | None
+    detail: str
+
+    def as_report(self) -> dict:
+        return {"rule": self.rule, "passed": self.passed, "value": self.value, "limit": self.limit, "detail": self.detail}
+
+
+def _check_false_negatives(verification: Verification) -> GateCheck:
+    missed = verification.false_negatives
+    if missed:
+        return GateCheck("false_negatives", False, missed, 0, f"{missed} members answered no")
+    return GateCheck("false_negatives", True, 0, 0, f"all {verification.members_checked:,} members answer maybe")
+
+
+def _check_fpr_upper(verification: Verification, target: float, fpr_slack: float) -> GateCheck:
+    held = verification.heldout
     limit = target * (1 + fpr_slack)
-    if verification.heldout.fpr_upper > limit:
-        reasons.append(
-            f"fpr_upper: the held-out rate's {verification.heldout.confidence:.0%} upper bound "
-            f"{verification.heldout.fpr_upper:.4%} is above the allowed {limit:.4%}"
+    words = f"the held-out rate's {held.confidence:.0%} upper bound {held.fpr_upper:.4%}"
+    if held.fpr_upper > limit:
+        return GateCheck("fpr_upper", False, held.fpr_upper, limit, f"{words} is above the allowed {limit:.4%}")
+    return GateCheck("fpr_upper", True, held.fpr_upper, limit, f"{words} is within the allowed {limit:.4%}")
+
+
+def _check_artifact_bytes(total_bytes: int, max_bytes: int) -> GateCheck:
+    if not max_bytes:
+        return GateCheck("max_artifact_bytes", True, total_bytes, None, "off (gate.max_artifact_bytes = 0)")
+    if total_bytes > max_bytes:
+        return GateCheck(
+            "max_artifact_bytes", False, total_bytes, max_bytes,
+            f"the artifact has {total_bytes} bytes, over the limit of {max_bytes}",
         )
-    if max_bytes and total_bytes > max_bytes:
-        reasons.append(f"max_artifact_bytes: the artifact has {total_bytes} bytes, over the limit of {max_bytes}")
-    return reasons
+    return GateCheck("max_artifact_bytes", True, total_bytes, max_bytes, f"{total_bytes:,} bytes, limit {max_bytes:,}")
+
+
+_CHANGE_OVERRIDE = "or build once with --no-change-limits"
+
+
+def _check_size_growth(total_bytes: int, limit: float, baseline: Baseline | None) -> GateCheck:
+    if not limit:
+        return GateCheck("max_size_growth", True, None, None, "off (gate.max_size_growth = 0)")
+    if baseline is None:
+        return GateCheck("max_size_growth", True, None, None, "no version in service to compare with")
+    growth = total_bytes / baseline.total_bytes - 1
+    words = (
+        f"the artifact has {total_bytes:,} bytes, {growth:+.1%} against version {baseline.version} "
+        f"({baseline.total_bytes:,} bytes)"
+    )
+    if growth > limit:
+        return GateCheck(
+            "max_size_growth", False, growth, limit,
+            f"{words}, over the allowed +{limit:.0%}; if the growth is expected, raise gate.max_size_growth "
+            f"(0 turns the rule off) {_CHANGE_OVERRIDE}",
+        )
+    return GateCheck("max_size_growth", True, growth, limit, f"{words}, allowed +{limit:.0%}")
+
+
+def _check_member_drop(members: int, limit: float, baseline: Baseline | None) -> GateCheck:
+    if not limit:
+        return GateCheck("max_member_drop", True, None, None, "off (gate.max_member_drop = 0)")
+    if baseline is None:
+        return GateCheck("max_member_drop", True, None, None, "no version in service to compare with")
+    ratio = members / baseline.members if baseline.members else 1.0
+    drop, change = 1 - ratio, ratio - 1
+    words = f"{members:,} members against {baseline.members:,} in version {baseline.version} ({change:+.1%})"
+    if drop > limit:
+        return GateCheck(
+            "max_member_drop", False, drop, limit,
+            f"{words}, a larger drop than the allowed {limit:.0%}: a truncated export would let every dropped member "
+            f"through unchecked; if the drop is intended, raise gate.max_member_drop (0 turns the rule off) {_CHANGE_OVERRIDE}",
+        )
+    return GateCheck("max_member_drop", True, drop, limit, f"{words}, allowed drop {limit:.0%}")
+
+
+def gate_checks(
+    verification: Verification,
+    *,
+    target: float,
+    total_bytes: int,
+    members: int,
+    settings: GateSettings,
+    baseline: Baseline | None,
+) -> list[GateCheck]:
+    """Every gate rule checked after the artifact is written, in a fixed order."""
+    return [
+        _check_false_negatives(verification),
+        _check_fpr_upper(verification, target, settings.fpr_slack),
+        _check_artifact_bytes(total_bytes, settings.max_artifact_bytes),
+        _check_size_growth(total_bytes, settings.max_size_growth, baseline),
+        _check_member_drop(members, settings.max_member_drop, baseline),
+    ]
+
+
+def refusal_reasons(checks: list[GateCheck]) -> list[str]:
+    """Why the gate refuses, one "rule: detail" line per failed rule; empty when it passes."""
+    return [f"{check.rule}: {check.detail}" for check in checks if not check.passed]

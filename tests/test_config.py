@@ -58,3 +58,23 @@ def test_unreadable_and_malformed_files(tmp_path):
     (tmp_path / "bad.toml").write_text("[corpus\n")
     with pytest.raises(ConfigError, match="not valid TOML"):
         load_config(tmp_path / "bad.toml")
+
+
+def test_gate_limits_read_zero_as_off_and_check_their_ranges():
+    gate = BuildConfig().gate
+    # on by default for a nightly build: +50% bytes, 20% fewer members against the version in service
+    assert (gate.max_size_growth, gate.max_member_drop, gate.min_heldout, gate.max_artifact_bytes) == (0.5, 0.2, 0, 0)
+    config = config_from_dict({"gate": {"max_size_growth": 0, "max_member_drop": 0.35, "min_heldout": 2000}}, Path("."))
+    assert (config.gate.max_size_growth, config.gate.max_member_drop, config.gate.min_heldout) == (0.0, 0.35, 2000)
+    with pytest.raises(ConfigError, match=r"gate\.max_member_drop must be between 0\.0 and 1\.0"):
+        config_from_dict({"gate": {"max_member_drop": 1.5}}, Path("."))
+    with pytest.raises(ConfigError, match=r"gate\.max_size_growth must be between"):
+        config_from_dict({"gate": {"max_size_growth": -0.1}}, Path("."))
+    with pytest.raises(ConfigError, match=r"gate\.min_heldout must be an integer"):
+        config_from_dict({"gate": {"min_heldout": 1.5}}, Path("."))
+
+
+def test_the_demo_turns_the_change_limits_off_and_the_nightly_example_keeps_the_defaults():
+    demo = load_config(CONFIGS / "demo.toml").gate
+    assert (demo.max_size_growth, demo.max_member_drop) == (0.0, 0.0)
+    assert load_config(CONFIGS / "nightly.example.toml").gate == BuildConfig().gate

@@ -1,5 +1,8 @@
-"""Corpus stage: every source format, validation errors that name the place, dedupe, conflicts, split."""
+"""Corpus stage: every source format, validation errors that name the file, the place and the fix,
+dedupe, conflicts, split, and the memory estimate made before reading."""
 
+import errno
+import os
 from pathlib import Path
 
 import numpy as np
@@ -7,7 +10,18 @@ import polars as pl
 import pytest
 
 from pipeline.config import CorpusSettings
-from pipeline.corpus import load_corpus, merge_duplicates, read_source, split_buckets
+from pipeline.corpus import (
+    BUILD_BASE_BYTES,
+    BUILD_BYTES_PER_KEY,
+    MEMORY_LIMIT_ENV,
+    available_memory,
+    estimate_build_memory,
+    estimate_rows,
+    load_corpus,
+    merge_duplicates,
+    read_source,
+    split_buckets,
+)
 from pipeline.errors import BadInput
 
 SETTINGS = CorpusSettings()
@@ -133,3 +147,180 @@ def test_split_is_stable_disjoint_and_near_its_shares(tmp_path):
     assert abs(len(first.heldout.keys) - 4000) < 4 * sigma
     # the split of a key does not depend on the other keys of the corpus
     assert split_buckets([b"player7"], settings.split_seed)[0] == split_buckets([b"x", b"player7"], settings.split_seed)[1]
+
+
+# --- every message names the file, the place and the fix ---------------------------------------------
+
+
+def _write(path: Path, content) -> Path:
+    if callable(content):
+        content(path)
+    else:
+        path.write_bytes(content)
+    return path
+
+
+def _binary_keys(path: Path) -> None:
+    pl.DataFrame({"key": pl.Series([b"ok", b"\xff\xfe"], dtype=pl.Binary)}).write_parquet(path)
+
+
+@pytest.mark.parametrize(
+    "name, content, message",
+    [
+        ("quote.csv", b'key,count\nok,1\n"open,2\nnext,3\n', r"line 3: a quoted field opened here is never closed; close the quote"),
+        ("stray.csv", b'key,count\nok,1\n"ab"c,2\n', r"line 3: .*quote the whole field"),
+        ("ragged.csv", b"key,count\nok,1\nx,y,2\n", r"line 3 has 3 fields where the header has 2"),
+        ("latin.csv", b"key,count\nok,1\ncaf\xe9,2\n", r"line 3 is not valid UTF-8 .*key_encoding = \"bytes\""),
+        ("broken.ndjson", b'{"key": "a"}\n\n{"key": \n', r"line 3 is not valid JSON"),
+        ("list.ndjson", b'{"key": "a"}\n[1, 2]\n', r"line 2 holds a JSON list, not an object"),
+        ("latin.ndjson", b'{"key": "a"}\n{"key": "\xff"}\n', r"line 2 is not valid UTF-8"),
+        ("fake.parquet", b"key\na\n", r"not a readable Parquet file .*real format"),
+        ("blank.csv", b"key,count\na,1\n,2\n", r"row 2 \(line 3\) has no key"),
+        ("gap.ndjson", b'{"key": "a"}\n\n{"count": 2}\n', r"line 3 has no key"),
+        ("raw.parquet", _binary_keys, r"row 2 holds a key that is not valid UTF-8; .*key_encoding = \"bytes\""),
+        ("ints.ndjson", b'{"key": 1}\n', r"column `key` holds Int64, expected text"),
+        ("text.csv", b"key,count\na,1\nb,many\n", r"row 2 \(line 3\) has count 'many'"),
+        ("huge.csv", b"key,count\na,1\nb,1e20\n", r"row 2 \(line 3\) has count '1e20'; counts must be whole numbers from 1 to 2\^53"),
+        ("inf.csv", b"key,count\na,inf\n", r"row 1 \(line 2\) has count 'inf'"),
+        ("flag.ndjson", b'{"key": "a", "count": true}\n', r"column `count` holds Boolean"),
+        ("empty.csv", b'key,count\na,1\n"",2\n', r"row 2 \(line 3\) has an empty key"),
+    ],
+)
+def test_table_problems_are_named_with_their_line_or_row(tmp_path, name, content, message):
+    path = _write(tmp_path / name, content)
+    with pytest.raises(BadInput, match=message) as raised:
+        read_source(path, SETTINGS, want_counts=True)
+    text = str(raised.value)
+    assert text.startswith(str(path)) and "\n" not in text
+
+
+def test_an_ndjson_place_counts_the_blank_lines_polars_skips(tmp_path):
+    path = _write(tmp_path / "gaps.ndjson", b'{"key": "a", "count": 1}\n\n\n{"key": "b", "count": 0}\n')
+    with pytest.raises(BadInput, match="line 4 has count 0"):
+        read_source(path, SETTINGS, want_counts=True)
+
+
+def test_raw_bytes_mode_reads_parquet_binary_keys_and_refuses_text_tables(tmp_path):
+    path = _write(tmp_path / "raw.parquet", _binary_keys)
+    assert read_source(path, CorpusSettings(key_encoding="bytes"), want_counts=False).keys == [b"ok", b"\xff\xfe"]
+    csv_path = _write(tmp_path / "plain.csv", b"key\na\n")
+    with pytest.raises(BadInput, match='key_encoding "bytes" reads one-key-a-line files and Parquet'):
+        read_source(csv_path, CorpusSettings(key_encoding="bytes"), want_counts=False)
+
+
+def test_a_byte_order_mark_is_not_part_of_the_first_key(tmp_path):
+    path = _write(tmp_path / "bom.txt", b"\xef\xbb\xbffirst\nsecond\n")
+    assert read_source(path, SETTINGS, want_counts=False).keys == [b"first", b"second"]
+    raw = read_source(path, CorpusSettings(key_encoding="bytes"), want_counts=False)
+    assert raw.keys[0] == b"\xef\xbb\xbffirst", "raw bytes are taken as they are"
+
+
+@pytest.mark.parametrize("suffix", [".txt", ".csv", ".parquet", ".ndjson"])
+def test_an_empty_file_holds_no_keys(tmp_path, suffix):
+    path = _write(tmp_path / f"empty{suffix}", b"")
+    assert read_source(path, SETTINGS, want_counts=True).rows == 0
+
+
+def test_a_folder_and_a_path_through_a_file_are_named(tmp_path):
+    folder = tmp_path / "folder.csv"
+    folder.mkdir()
+    with pytest.raises(BadInput, match="is a folder, not a file"):
+        read_source(folder, SETTINGS, want_counts=True)
+    afile = _write(tmp_path / "afile", b"x\n")
+    with pytest.raises(BadInput, match="a part of the path is a file"):
+        read_source(afile / "keys.txt", SETTINGS, want_counts=True)
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root reads a file whatever its mode")
+def test_an_unreadable_file_is_named(tmp_path):
+    path = _write(tmp_path / "locked.txt", b"a\n")
+    path.chmod(0)
+    with pytest.raises(BadInput, match="permission denied; make the file readable"):
+        read_source(path, SETTINGS, want_counts=False)
+
+
+def test_an_io_error_that_may_clear_is_not_bad_input(tmp_path, monkeypatch):
+    # EIO (a network filesystem's hiccup, say) propagates as OSError, for the flow to retry
+    path = _write(tmp_path / "keys.txt", b"a\n")
+    real_open = open
+
+    def flaky(file, *args, **kwargs):
+        if Path(file) == path:
+            raise OSError(errno.EIO, "Input/output error")
+        return real_open(file, *args, **kwargs)
+
+    monkeypatch.setattr("builtins.open", flaky)
+    with pytest.raises(OSError) as raised:
+        read_source(path, SETTINGS, want_counts=False)
+    assert not isinstance(raised.value, BadInput) and raised.value.errno == errno.EIO
+
+
+def test_a_split_that_leaves_no_training_or_validation_keys_is_refused(tmp_path):
+    members = _write_lines(tmp_path / "m.txt", ["bot1"])
+    # with the default seed, "alpha" falls in the held-out part and "beta" in validation
+    non = _write_lines(tmp_path / "n.txt", ["alpha", "beta"])
+    with pytest.raises(BadInput, match=r"leaves no train keys .*give more non-members"):
+        load_corpus(members, non, SETTINGS)
+
+
+def test_duplicates_and_conflicts_are_counted_in_the_stats(tmp_path):
+    members = _write_lines(tmp_path / "m.txt", ["m1", "m2", "m1", "both"])
+    non = tmp_path / "n.csv"
+    keys = [f"n{i}" for i in range(200)]
+    pl.DataFrame({"key": keys + ["n1", "n1", "both", "both"], "count": [1] * 200 + [4, 5, 2, 3]}).write_csv(non)
+    corpus = load_corpus(members, non, SETTINGS)
+    assert corpus.stats == {"member_rows": 4, "member_duplicates": 1, "non_member_rows": 204,
+                            "non_member_duplicates": 3, "conflicts": 1}
+    parts = (corpus.train, corpus.validation, corpus.heldout)
+    counts = {k: int(c) for part in parts for k, c in zip(part.keys, part.counts)}
+    assert counts[b"n1"] == 1 + 4 + 5 and b"both" not in counts and len(counts) == 200
+
+
+# --- memory, estimated before reading ----------------------------------------------------------------
+
+
+def test_rows_are_estimated_from_a_sample_and_parquet_metadata(tmp_path):
+    lines = _write_lines(tmp_path / "keys.txt", [f"key{i:06d}" for i in range(300_000)])  # 3.3 MB: sampled
+    assert abs(estimate_rows(lines) - 300_000) <= 300_000 * 0.01
+    table = tmp_path / "keys.parquet"
+    pl.DataFrame({"key": [f"k{i}" for i in range(12_345)]}).write_parquet(table)
+    assert estimate_rows(table) == 12_345
+    assert estimate_rows(_write(tmp_path / "one.txt", b"no newline at the end")) == 1
+    assert estimate_rows(_write(tmp_path / "none.txt", b"")) == 0
+
+
+def test_the_estimate_counts_the_keys_of_every_source(tmp_path):
+    lines = _write_lines(tmp_path / "members.txt", ["k" * 10] * 1000)
+    table = tmp_path / "lookups.parquet"
+    pl.DataFrame({"key": [f"n{i}" for i in range(500)], "count": [1] * 500}).write_parquet(table)
+    estimate = estimate_build_memory([lines, table])
+    assert estimate.keys == 1500
+    assert estimate.needed_bytes == BUILD_BASE_BYTES + 1500 * BUILD_BYTES_PER_KEY
+
+
+def test_a_corpus_too_large_for_memory_is_refused_before_any_key_is_read(tmp_path, monkeypatch):
+    members = _write_lines(tmp_path / "m.txt", ["a", "b"])
+    non = _write_lines(tmp_path / "n.txt", [f"n{i}" for i in range(100)])
+    monkeypatch.setenv(MEMORY_LIMIT_ENV, "100M")
+    monkeypatch.setattr("pipeline.corpus.read_source", lambda *args: pytest.fail("a key was read"))
+    with pytest.raises(BadInput, match=r"needs about 0\.4 GiB .*more than the 0\.1 GiB of memory available") as raised:
+        load_corpus(members, non, SETTINGS)
+    assert str(members) in str(raised.value) and MEMORY_LIMIT_ENV in str(raised.value)
+
+
+@pytest.mark.parametrize("text, expected", [("1024", 1024), ("8G", 8 << 30), ("512 MiB", 512 << 20), ("2t", 2 << 40)])
+def test_the_memory_limit_reads_sizes(monkeypatch, text, expected):
+    monkeypatch.setenv(MEMORY_LIMIT_ENV, text)
+    assert available_memory() == expected
+
+
+def test_a_memory_limit_that_is_not_a_size_is_refused(monkeypatch):
+    monkeypatch.setenv(MEMORY_LIMIT_ENV, "plenty")
+    with pytest.raises(BadInput, match="is not a size"):
+        available_memory()
+
+
+def test_available_memory_without_a_limit_is_what_the_system_reports(monkeypatch):
+    monkeypatch.delenv(MEMORY_LIMIT_ENV, raising=False)
+    physical = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    assert 0 < available_memory() <= physical

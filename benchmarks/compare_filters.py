@@ -1,0 +1,493 @@
+"""Compare a plain Bloom filter, a one-threshold learned filter and the full artifact, byte for byte.
+
+Run: .venv/bin/python benchmarks/compare_filters.py [--quick] [--targets 0.001,0.01,0.05]
+         [--corpus demo,words,words-by-key] [--demo-members 200000] [--demo-non-members 2000000]
+
+Corpora. `demo` is the Emberfall demo (`pipeline.demo.write_demo_corpus`, by default the full
+200,000 members and 2,000,000 looked-up handles). `words` is the open word corpus of
+`benchmarks/word_corpus.py`: English words against the words of eight other languages, with their
+occurrence counts as lookup counts (needs the `bench` extra). Those counts have a very heavy head
+(one word carries 2.7% of all lookups), so its held-out part weighs like only about 170 unweighted
+draws: enough to show 5%, too few to show 1% or 0.1% at all, and the pipeline refuses those two
+targets (rule min_heldout) as it would in a build. `words-by-key` is the same keys without the
+counts, every distinct word one lookup: about 460,000 held-out words, plenty for 0.1%. Every corpus
+uses the demo's build config (`configs/demo.toml`) apart from the target.
+
+Each corpus goes through the pipeline's own stage functions in this process (the bodies of the
+build flow's tasks in `flows.build`): the corpus stage with its hash split, and the features stage
+once per corpus, its matrices shared by every target. Then, per target F:
+
+(a) plain Bloom: one Bloom filter of all members at F (`pipeline.bloom`); its bytes are its bit array.
+(b) one threshold: the chosen model with one score threshold; members below it go into one backup
+    Bloom filter, keys at or above it answer yes (`pipeline.baselines.plan_single_threshold`); the
+    threshold and the split of F between the two parts are chosen on the validation non-members,
+    and it is packaged as an artifact with the same compiled model, so it pays the same model bytes.
+(c) full: the artifact as the build flow makes it: aim below F (`pipeline.verify.aim_fpr`), the
+    model chosen by bytes at the aim, regions, filters, package.
+
+All are measured on the held-out non-members (never used for training or any choice), by lookups
+when the corpus has counts and by distinct keys; (b) and (c) through the loader on the written file,
+as the verify stage does (with every member checked). Bytes of (b) and (c) are artifact file sizes.
+
+Equal measured FPR. The pipeline plans for an aim below the target, the margin that lets a build on
+target pass its confidence gate, so at one target the full artifact holds a lower false-positive rate
+than a Bloom filter built at F, and comparing their bytes would charge it for its safety margin
+(log2(F / aim) / ln 2 bits for every member in a backup filter). The headline ratios (table 2)
+therefore compare at F*, the full artifact's measured held-out rate:
+- plain Bloom at F*: the bytes the sizing formula gives at F* (bits rounded up to 64-bit words, as
+  built). A Bloom filter's rate comes from its hashing alone, not from the keys; row (a) of table 1
+  shows its measured rate at F agrees with the formula;
+- one threshold at F*: its rate depends on the keys (the share of lookups above its threshold is an
+  estimate too), so it is built at 17 planned rates from F*/4 to 4 F* and the smallest whose
+  measured rate is at most F* is taken. Choosing on the held-out keys can only flatter this baseline;
+- ideal at F*: n (log2(1/F*) - D) / ln 2 / 8 + model bytes with D the divergence of the full
+  artifact's regions (`pipeline.baselines.ideal_bytes`), and beside it the reachable version, the
+  same regions with their budgets capped at 1 (`clamped_ideal_bytes`): the formula credits a region
+  whose budget would exceed 1 with savings no filter can make.
+Table 1 prints the raw figures at the target, table 3 what explains the sizes (the model's AUC and
+bytes, the regions' divergence against the most the segments allow, the number of regions and of
+budgets at 1, and full - ideal@F* split into container bytes, Bloom rounding, clamping, and the gap
+between the aim the filters were sized for and the rate measured).
+
+Goals (table 2): on the demo at 1%, full <= 0.5 x plain Bloom, <= 0.85 x one threshold and <= 1.10 x
+ideal, all at F*; on the word corpora, full below plain Bloom at every target.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import functools
+import math
+import sys
+import tempfile
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+from flows.build import choose_regions, extract_features, fill_filters, read_corpus, train_model, verify_package, write_package
+from pipeline import verify
+from pipeline.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
+from pipeline.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys, word_count
+from pipeline.config import BuildConfig, load_config, with_overrides
+from pipeline.corpus import Corpus
+from pipeline.demo import write_demo_corpus
+from pipeline.errors import BadInput
+from pipeline.features import default_feature_spec, featurize
+from pipeline.regions import kl_divergence_bits, region_of, segment_edges, segment_shares
+from pipeline.trees import score_batch
+
+import word_corpus  # benchmarks/word_corpus.py: this script's folder is on sys.path when it runs
+
+CORPORA = ("demo", "words", "words-by-key")
+DEFAULT_TARGETS = (0.001, 0.01, 0.05)
+# every corpus is built with the demo's config (as `tamis demo` does), only the target changes
+DEMO_CONFIG = resources.files("configs") / "demo.toml"
+# --quick: a demo of this size trains in seconds; the word corpora keep their size (they are what
+# they are) but train the small model grid below.
+QUICK_DEMO = (20_000, 200_000)
+QUICK_MODEL = {"leaves": (15,), "learning_rates": (0.5,), "max_trees": 20}
+# The goals of the comparison, at equal measured FPR (see the docstring).
+GOAL_TARGET = 0.01
+GOAL_VS_BLOOM = 0.5
+GOAL_VS_ONE_THRESHOLD = 0.85
+GOAL_VS_IDEAL = 1.10
+# (b) at equal measured FPR is searched among plans at F* x 2^(j/4), j in this range: F*/4 to 4 F*.
+ONE_THRESHOLD_STEPS = range(-8, 9)
+
+
+def log(message: str) -> None:
+    print(f"[{time.strftime('%H:%M:%S')}] {message}", file=sys.stderr, flush=True)
+
+
+def quiet(done: int, total: int | None, unit: str, note: str) -> None:
+    """A stage's progress reporter that says nothing (the stages report per chunk or checkpoint)."""
+
+
+# Corpora -----------------------------------------------------------------------------------------
+
+
+def write_corpus(name: str, folder: Path, demo_size: tuple[int, int]) -> tuple[Path, Path]:
+    """The members and non-members files of a corpus, written into `folder`."""
+    if name == "demo":
+        return write_demo_corpus(folder, members=demo_size[0], non_members=demo_size[1])
+    members, nonmembers = word_corpus.write_word_corpus(folder)
+    if name == "words-by-key":
+        keys_only = folder / "foreign_word_keys.parquet"
+        pl.read_parquet(nonmembers).select("key").write_parquet(keys_only)
+        return members, keys_only
+    return members, nonmembers
+
+
+@dataclass(frozen=True)
+class Prepared:
+    """A corpus read and split, with what every target shares: the feature matrices of the build
+    flow's features stage, the held-out keys' features and their hashes (one seed for all filters)."""
+
+    name: str
+    corpus: Corpus
+    config: BuildConfig
+    spec: dict
+    features: dict
+    heldout_features: np.ndarray
+    heldout_hashes: KeyHashes
+
+
+def prepare(name: str, folder: Path, demo_size: tuple[int, int], model: dict) -> Prepared:
+    members, nonmembers = write_corpus(name, folder, demo_size)
+    config = with_overrides(load_config(Path(str(DEMO_CONFIG))), corpus={"members": members, "non_members": nonmembers}, model=model)
+    corpus = read_corpus.fn(config)
+    spec = default_feature_spec()
+    started = time.perf_counter()
+    features = extract_features.fn(corpus, spec, quiet)
+    heldout_features = featurize(corpus.heldout.keys, spec)
+    heldout_hashes = hash_keys(corpus.heldout.keys, config.filters.hash_seed)
+    log(
+        f"{name}: {len(corpus.members):,} members, {len(corpus.train.keys):,} / {len(corpus.validation.keys):,} / "
+        f"{len(corpus.heldout.keys):,} train / validation / held-out non-members; features in {time.perf_counter() - started:.0f} s"
+    )
+    return Prepared(name, corpus, config, spec, features, heldout_features, heldout_hashes)
+
+
+# Filters -----------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Measured:
+    """One filter's bytes and its held-out false-positive rates."""
+
+    label: str
+    bytes: int
+    by_lookups: float | None
+    by_keys: float
+
+    @property
+    def rate(self) -> float:
+        """The rate the pipeline judges: by lookups when the corpus has counts, else by keys."""
+        return self.by_keys if self.by_lookups is None else self.by_lookups
+
+
+def measured(label: str, size: int, answers: np.ndarray, prepared: Prepared) -> Measured:
+    corpus = prepared.corpus
+    measurement = verify.measure_fpr(answers, corpus.heldout, corpus.has_counts, prepared.config.gate.confidence)
+    by_keys = measurement.false_positive_keys / measurement.keys
+    return Measured(label, size, measurement.fpr if corpus.has_counts else None, by_keys)
+
+
+def plain_bloom(prepared: Prepared, fpr: float) -> Measured:
+    """(a): a Bloom filter of every member at fpr, queried with the held-out keys."""
+    members = len(prepared.corpus.members)
+    bits = bloom_bits(members, fpr)
+    bloom = BloomFilter.empty(bits, bloom_hashes(bits, members), prepared.config.filters.hash_seed)
+    bloom.insert(prepared.corpus.members)
+    return measured("plain Bloom", bloom.nbytes, bloom.query_hashes(prepared.heldout_hashes), prepared)
+
+
+def plain_bloom_bytes(members: int, fpr: float) -> int:
+    """Bytes of the bit array of a plain Bloom filter at fpr, as `plain_bloom` builds it."""
+    return 8 * word_count(bloom_bits(members, fpr))
+
+
+def heldout_answers(heldout_scores: np.ndarray, prepared: Prepared, boundaries, filters) -> np.ndarray:
+    """The held-out keys' answers from their scores, the boundaries and the region filters: the
+    loader's own rule (`MembershipFilter.contains_many`), on scores and hashes computed once."""
+    regions = region_of(heldout_scores, boundaries)
+    answers = np.zeros(len(heldout_scores), dtype=bool)
+    for index, region in enumerate(filters):
+        mask = regions == index
+        if region.mode == "yes":
+            answers[mask] = True
+        elif region.mode == "bloom" and mask.any():
+            bloom = region.bloom(prepared.config.filters.hash_seed)
+            answers[mask] = bloom.query_hashes(prepared.heldout_hashes.select(mask))
+    return answers
+
+
+@dataclass(frozen=True)
+class Built:
+    """An artifact written to a file, with its held-out answers (computed from scores)."""
+
+    path: Path
+    filters: list
+    answers: np.ndarray
+
+
+def build_artifact(prepared: Prepared, path: Path, forest, plan, member_scores, heldout_scores) -> Built:
+    """The filters of a plan (anything with `boundaries` and `fprs`), packaged with the forest."""
+    seed = prepared.config.filters.hash_seed
+    filters = fill_filters.fn(prepared.corpus, member_scores, plan, seed, quiet)
+    write_package.fn(path, prepared.spec, forest, plan, filters, seed, {"benchmark": path.stem}, None)
+    return Built(path, filters, heldout_answers(heldout_scores, prepared, plan.boundaries, filters))
+
+
+def through_loader(prepared: Prepared, built: Built, label: str) -> Measured:
+    """Verify an artifact as the verify stage does (every member, every held-out key through the
+    loader) and check that the answers computed from scores agree with the loader's."""
+    checked = verify_package.fn(built.path, prepared.corpus, prepared.config)
+    if checked.false_negatives:
+        raise AssertionError(f"{built.path}: {checked.false_negatives} members answered no (invariant 1 broken)")
+    result = measured(label, built.path.stat().st_size, built.answers, prepared)
+    if checked.heldout.false_positive_keys != int(built.answers.sum()):
+        raise AssertionError(f"{built.path}: the loader's false positives differ from those computed from scores")
+    return result
+
+
+def cheapest_one_threshold(prepared, folder, forest, scores, heldout_scores, reference: float) -> Measured | None:
+    """(b) at equal measured FPR: of the one-threshold filters planned at reference x 2^(j/4), j in
+    ONE_THRESHOLD_STEPS, the smallest whose measured held-out rate is at most the reference (None
+    if none is). Choosing among them on the held-out keys can only flatter this baseline."""
+    best = None
+    for step in ONE_THRESHOLD_STEPS:
+        planned = reference * 2.0 ** (step / 4)
+        if planned >= 1.0:
+            continue
+        single = plan_single_threshold(scores.member_scores, scores.validation_scores, scores.validation_weights, planned)
+        built = build_artifact(prepared, folder / f"one{step:+d}.tamis", forest, single, scores.member_scores, heldout_scores)
+        candidate = measured("one threshold", built.path.stat().st_size, built.answers, prepared)
+        if candidate.rate <= reference and (best is None or candidate.bytes < best[0].bytes):
+            best = (candidate, built)
+    return None if best is None else through_loader(prepared, best[1], "one threshold")
+
+
+@dataclass(frozen=True)
+class TargetResult:
+    """The three filters at one target, the normalised figures at F*, and what explains them."""
+
+    corpus: str
+    target: float
+    refused: str | None = None
+    aim: float = math.nan
+    bloom: Measured | None = None
+    one: Measured | None = None
+    full: Measured | None = None
+    bloom_at_full: int | None = None
+    one_at_full: Measured | None = None
+    ideal: float | None = None
+    clamped_ideal: float | None = None
+    details: dict | None = None
+
+
+def refusal(prepared: Prepared, target: float) -> str:
+    corpus, gate = prepared.corpus, prepared.config.gate
+    sample = verify.heldout_sample(corpus.heldout, corpus.has_counts)
+    needed = max(verify.needed_heldout(target, gate.confidence), gate.min_heldout)
+    return f"refused (min_heldout): the held-out part weighs {sample:,.0f} draws, {needed:,} needed"
+
+
+def explain(prepared: Prepared, choice, plan, scores, full: Measured, filters, aim: float, reference: float | None) -> dict:
+    """The figures of table 3, among them full - ideal@F* split into its four parts."""
+    members = len(prepared.corpus.members)
+    edges = segment_edges(scores.validation_scores, prepared.config.regions.segments)
+    g, h = segment_shares(scores.member_scores, scores.validation_scores, scores.validation_weights, edges)
+    filter_bytes = sum(f.nbytes for f in filters)
+    ideal_at_aim = ideal_bytes(members, aim, plan.kl_bits, 0.0)
+    clamped_at_aim = clamped_ideal_bytes(plan.member_counts, plan.nonmember_shares, aim, 0.0)
+    return {
+        "auc": choice.auc,
+        "trees": choice.trees,
+        "leaves": choice.params["leaves"],
+        "model_bytes": choice.model_bytes,
+        "regions": plan.regions,
+        "clamped": int(np.count_nonzero(plan.fprs >= 1.0)),
+        "kl_regions": plan.kl_bits,
+        "kl_segments": kl_divergence_bits(g, h),
+        # the parts of full - ideal@F*
+        "container": full.bytes - choice.model_bytes - filter_bytes,
+        "rounding": filter_bytes - clamped_at_aim,
+        "clamping": clamped_at_aim - ideal_at_aim,
+        "aim_vs_measured": None if reference is None else ideal_at_aim - ideal_bytes(members, reference, plan.kl_bits, 0.0),
+    }
+
+
+def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
+    """(a), (b) and (c) at one target, then (a), (b) and the ideal at the full artifact's rate F*."""
+    corpus = prepared.corpus
+    config = with_overrides(prepared.config, target={"fpr": target})
+    try:
+        sample = verify.require_heldout(corpus.heldout, corpus.has_counts, target, config.gate, config.corpus.heldout_share)
+    except BadInput:
+        return TargetResult(prepared.name, target, refused=refusal(prepared, target))
+    aim = verify.aim_fpr(target, sample, config.gate.confidence, config.gate.aim_sigmas)
+    started = time.perf_counter()
+    choice = train_model.fn(corpus, prepared.features, aim, config, quiet)
+    plan, scores = choose_regions.fn(corpus, prepared.features, choice.forest, aim, config)
+    heldout_scores = score_batch(choice.forest, prepared.heldout_features)
+    build = functools.partial(
+        build_artifact, prepared, forest=choice.forest, member_scores=scores.member_scores, heldout_scores=heldout_scores
+    )
+    full_built = build(folder / "full.tamis", plan=plan)
+    full = through_loader(prepared, full_built, "full")
+    single = plan_single_threshold(scores.member_scores, scores.validation_scores, scores.validation_weights, target)
+    one = through_loader(prepared, build(folder / "one.tamis", plan=single), "one threshold")
+    log(
+        f"{prepared.name} at {target:g}: aim {aim:.4%}, {choice.trees} trees of {choice.params['leaves']} leaves, "
+        f"{plan.regions} regions, {full.bytes:,} bytes, measured {full.rate:.4%} ({time.perf_counter() - started:.0f} s)"
+    )
+    reference = full.rate if full.rate > 0 else None
+    members = len(corpus.members)
+    result = TargetResult(prepared.name, target, None, aim, plain_bloom(prepared, target), one, full)
+    details = {**explain(prepared, choice, plan, scores, full, full_built.filters, aim, reference), "one_threshold": single}
+    if reference is None:
+        return dataclasses.replace(result, details=details)
+    return dataclasses.replace(
+        result,
+        bloom_at_full=plain_bloom_bytes(members, reference),
+        one_at_full=cheapest_one_threshold(prepared, folder, choice.forest, scores, heldout_scores, reference),
+        ideal=ideal_bytes(members, reference, plan.kl_bits, choice.model_bytes),
+        clamped_ideal=clamped_ideal_bytes(plan.member_counts, plan.nonmember_shares, reference, choice.model_bytes),
+        details=details,
+    )
+
+
+# Report ------------------------------------------------------------------------------------------
+
+
+def percent(value: float | None) -> str:
+    return "-" if value is None else f"{value:.4%}"
+
+
+def ratio(top: float | None, bottom: float | None) -> str:
+    return "-" if top is None or not bottom else f"{top / bottom:.3f}"
+
+
+def count(value: float | None) -> str:
+    return "-" if value is None else f"{round(value):,}"
+
+
+def as_built_table(results: Sequence[TargetResult]) -> None:
+    print("Table 1. As built at each target. FPR measured on the held-out non-members, by lookups (corpora with")
+    print("counts) and by distinct keys; bytes of the bit array (plain Bloom) or of the artifact file (the others)")
+    print(
+        f"{'corpus':<13} {'target':>7} {'aim':>8} {'filter':<14} {'bytes':>11} {'FPR lookups':>12} {'FPR keys':>10} "
+        f"{'vs Bloom':>9} {'vs one':>7}"
+    )
+    for r in results:
+        if r.refused:
+            print(f"{r.corpus:<13} {r.target:>7g} {'-':>8} {r.refused}")
+            continue
+        for m in (r.bloom, r.one, r.full):
+            print(
+                f"{r.corpus:<13} {r.target:>7g} {r.aim:>8.4%} {m.label:<14} {m.bytes:>11,} {percent(m.by_lookups):>12} "
+                f"{percent(m.by_keys):>10} {ratio(m.bytes, r.bloom.bytes):>9} {ratio(m.bytes, r.one.bytes):>7}"
+            )
+
+
+def goal_verdicts(r: TargetResult) -> str:
+    """The goals that apply to this row, each met or MISSED."""
+    if r.corpus == "demo" and r.target == GOAL_TARGET:
+        checks = {
+            f"full/Bloom<={GOAL_VS_BLOOM}": r.full.bytes <= GOAL_VS_BLOOM * r.bloom_at_full,
+            f"full/one<={GOAL_VS_ONE_THRESHOLD}": r.one_at_full is not None and r.full.bytes <= GOAL_VS_ONE_THRESHOLD * r.one_at_full.bytes,
+            f"full/ideal<={GOAL_VS_IDEAL}": r.full.bytes <= GOAL_VS_IDEAL * r.ideal,
+        }
+    elif r.corpus.startswith("words"):
+        checks = {"full<Bloom@F*": r.full.bytes < r.bloom_at_full, "full<Bloom@target (table 1)": r.full.bytes < r.bloom.bytes}
+    else:
+        return ""
+    return ", ".join(f"{name} {'met' if ok else 'MISSED'}" for name, ok in checks.items())
+
+
+def equal_fpr_table(results: Sequence[TargetResult]) -> None:
+    print()
+    print("Table 2. At equal measured FPR F* (the full artifact's held-out rate, by lookups when there are counts)")
+    print(
+        f"{'corpus':<13} {'target':>7} {'F*':>9} {'Bloom@F*':>10} {'one@F*':>10} {'its FPR':>9} {'full':>10} {'ideal@F*':>10} "
+        f"{'clamped@F*':>10} {'one/Bloom':>9} {'full/Bloom':>10} {'full/one':>8} {'full/ideal':>10} {'full/clamped':>12}  goals"
+    )
+    for r in results:
+        if r.refused or r.bloom_at_full is None:
+            print(f"{r.corpus:<13} {r.target:>7g} {r.refused or 'no false positive measured: F* is 0, nothing to compare at'}")
+            continue
+        one = r.one_at_full
+        print(
+            f"{r.corpus:<13} {r.target:>7g} {percent(r.full.rate):>9} {r.bloom_at_full:>10,} {count(one and one.bytes):>10} "
+            f"{percent(one and one.rate):>9} {r.full.bytes:>10,} {r.ideal:>10,.0f} {r.clamped_ideal:>10,.0f} "
+            f"{ratio(one and one.bytes, r.bloom_at_full):>9} {ratio(r.full.bytes, r.bloom_at_full):>10} "
+            f"{ratio(r.full.bytes, one and one.bytes):>8} "
+            f"{ratio(r.full.bytes, r.ideal):>10} {ratio(r.full.bytes, r.clamped_ideal):>12}  {goal_verdicts(r)}"
+        )
+    print(
+        f"Bloom@F*: the formula's bytes at F*; one@F*: the smallest of {len(ONE_THRESHOLD_STEPS)} one-threshold filters "
+        "planned at F*/4 .. 4 F* whose measured FPR ('its FPR') is at most F*;\nideal@F*: n (log2(1/F*) - D) / ln 2 / 8 + "
+        "model bytes; clamped@F*: the same regions' KKT budgets capped at 1 (the reachable ideal)"
+    )
+
+
+def diagnostics_table(results: Sequence[TargetResult]) -> None:
+    print()
+    print("Table 3. What explains the sizes of the full artifact (D in bits; the last four columns add up to full - ideal@F*)")
+    print(
+        f"{'corpus':<13} {'target':>7} {'AUC':>7} {'trees':>5} {'leaves':>6} {'model B':>8} {'k':>2} {'f=1':>3} "
+        f"{'D regions':>9} {'D segments':>10} {'one: above t':>12} {'members below':>13} "
+        f"{'container':>9} {'rounding':>8} {'clamping':>8} {'aim vs F*':>9}"
+    )
+    for r in results:
+        if r.refused:
+            continue
+        d, single = r.details, r.details["one_threshold"]
+        print(
+            f"{r.corpus:<13} {r.target:>7g} {d['auc']:>7.4f} {d['trees']:>5} {str(d['leaves']):>6} {d['model_bytes']:>8,} "
+            f"{d['regions']:>2} {d['clamped']:>3} {d['kl_regions']:>9.3f} {d['kl_segments']:>10.3f} "
+            f"{single.share_above:>12.4%} {single.members_below:>13,} {count(d['container']):>9} {count(d['rounding']):>8} "
+            f"{count(d['clamping']):>8} {count(d['aim_vs_measured']):>9}"
+        )
+    print(
+        "one: above t / members below: the one-threshold filter at the target (share of validation lookups at or above\n"
+        "its threshold, members in its backup); container: artifact bytes beyond the model's priced bytes and the filters'\n"
+        "bits; rounding: filter bits beyond n_i log2(1/f_i) / ln 2 (integer probes, bits, words); clamping: the clamped\n"
+        "ideal beyond the formula, both at the aim; aim vs F*: the formula at the aim beyond the formula at F*"
+    )
+
+
+# Command line ------------------------------------------------------------------------------------
+
+
+def parse_targets(text: str) -> tuple[float, ...]:
+    try:
+        targets = tuple(float(part) for part in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"targets must be comma-separated rates like 0.001,0.01, got {text!r}") from None
+    if not all(0 < t < 0.5 for t in targets):
+        raise argparse.ArgumentTypeError(f"every target must lie in (0, 0.5), got {text!r}")
+    return targets
+
+
+def parse_corpora(text: str) -> tuple[str, ...]:
+    names = tuple(part.strip() for part in text.split(","))
+    unknown = [n for n in names if n not in CORPORA]
+    if unknown:
+        raise argparse.ArgumentTypeError(f"unknown corpus {', '.join(unknown)}; choose from {', '.join(CORPORA)}")
+    return names
+
+
+def main(argv: Sequence[str] | None = None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help=f"a {QUICK_DEMO[0]:,}-member demo and one small model candidate")
+    parser.add_argument("--targets", type=parse_targets, default=DEFAULT_TARGETS, help="comma-separated target FPRs (default 0.001,0.01,0.05)")
+    parser.add_argument("--corpus", type=parse_corpora, default=CORPORA, help=f"comma-separated corpora (default {','.join(CORPORA)})")
+    parser.add_argument("--demo-members", type=int, help="demo members (default 200,000; --quick 20,000)")
+    parser.add_argument("--demo-non-members", type=int, help="demo non-members (default 2,000,000; --quick 200,000)")
+    args = parser.parse_args(argv)
+    default_size = QUICK_DEMO if args.quick else (200_000, 2_000_000)
+    demo_size = (args.demo_members or default_size[0], args.demo_non_members or default_size[1])
+    model = QUICK_MODEL if args.quick else {}
+    results = []
+    with tempfile.TemporaryDirectory(prefix="tamis-compare-") as scratch:
+        for name in args.corpus:
+            prepared = prepare(name, Path(scratch) / name, demo_size, model)
+            for target in args.targets:
+                folder = Path(scratch) / name / f"target-{target:g}"
+                folder.mkdir()
+                results.append(compare_at(prepared, target, folder))
+    as_built_table(results)
+    equal_fpr_table(results)
+    diagnostics_table(results)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,342 @@
+"""The build report page: `report.html` beside report.json, one self-contained file.
+
+It shows the gate's decision and the key numbers as tables, and four figures embedded as base64
+PNG: the member and non-member score distributions with the region boundaries, the regions'
+false-positive budgets and filter sizes, the artifact against a plain Bloom filter and the lower
+bound, and (when a version is in service) the drift figures. Its inputs are the report dict and
+plain score arrays; matplotlib is used through its object API with the Agg canvas, so no global
+backend is chosen and no display is needed, and it is imported only when a figure is drawn (about
+a second), so `tamis show` reads the page's name without it. The page is XHTML-compatible HTML5 (every tag
+closed, only the five XML entities), so an XML parser reads it too.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from pipeline import publish
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
+
+REPORT_PAGE_NAME = "report.html"
+
+# Every figure is 8 x 3.6 inches at 100 dots per inch: 800 x 360 pixels, wide enough for a laptop
+# screen at full resolution and small enough to keep the page under a megabyte.
+FIGURE_INCHES = (8.0, 3.6)
+FIGURE_DPI = 100
+
+# Bins of the score histograms: enough to show the shape of each distribution, few enough that
+# the sparser one (members in the low-score bins) is not all noise.
+SCORE_BINS = 80
+
+MEMBER_COLOUR, NONMEMBER_COLOUR, BOUNDARY_COLOUR = "#c2410c", "#1d4ed8", "#6b7280"
+
+
+@dataclass(frozen=True)
+class ScoreSample:
+    """The scores the report page plots: every member's, and the validation non-members' with
+    their lookup counts as weights (the sample the region plan used)."""
+
+    member_scores: np.ndarray
+    validation_scores: np.ndarray
+    validation_weights: np.ndarray
+
+
+# ---------------------------------------------------------------------------------------------------
+# Figures: each a function from plain data to a matplotlib Figure.
+# ---------------------------------------------------------------------------------------------------
+
+
+def _figure(columns: int = 1) -> tuple[Figure, list]:
+    from matplotlib.figure import Figure
+
+    figure = Figure(figsize=FIGURE_INCHES, dpi=FIGURE_DPI, layout="constrained")
+    axes = figure.subplots(1, columns, squeeze=False)[0]
+    return figure, list(axes)
+
+
+def boundaries_of(regions: Sequence[dict]) -> list[int]:
+    """The region boundaries from the report's region rows (each region's `score_from` but the first's)."""
+    return [int(region["score_from"]) for region in regions[1:]]
+
+
+def score_figure(scores: ScoreSample, boundaries: Sequence[int]) -> Figure:
+    """Share of members and of non-member lookups per score bin, on a log scale, with the
+    region boundaries as dashed lines."""
+    figure, (ax,) = _figure()
+    members = np.asarray(scores.member_scores, dtype=np.float64)
+    others = np.asarray(scores.validation_scores, dtype=np.float64)
+    weights = np.asarray(scores.validation_weights, dtype=np.float64)
+    edges = np.histogram_bin_edges(np.concatenate([members, others, np.asarray(boundaries, dtype=np.float64)]), SCORE_BINS)
+    ax.hist(members, bins=edges, weights=np.full(len(members), 1 / max(len(members), 1)), histtype="step",
+            log=True, color=MEMBER_COLOUR, label=f"members ({len(members):,})")
+    ax.hist(others, bins=edges, weights=weights / weights.sum(), histtype="step", log=True, color=NONMEMBER_COLOUR,
+            label=f"non-member lookups, validation ({len(others):,} keys)")
+    for boundary in boundaries:
+        ax.axvline(boundary, color=BOUNDARY_COLOUR, linestyle="--", linewidth=1)
+    span = [edges[0], *boundaries, edges[-1]]
+    for index, (low, high) in enumerate(zip(span[:-1], span[1:])):
+        ax.text((low + high) / 2, 0.98, f"R{index}", transform=ax.get_xaxis_transform(), ha="center", va="top",
+                fontsize=8, color=BOUNDARY_COLOUR)
+    ax.set_xlabel("score (higher = more member-like); dashed: region boundaries")
+    ax.set_ylabel("share per bin (log scale)")
+    figure.legend(loc="outside upper center", ncols=2, fontsize=8, frameon=False)
+    return figure
+
+
+def regions_figure(regions: Sequence[dict]) -> Figure:
+    """Each region's false-positive budget (log scale) and the bytes of its backup filter."""
+    figure, (budget_ax, bytes_ax) = _figure(columns=2)
+    index = np.arange(len(regions))
+    labels = [f"R{i}" for i in index]
+    fprs = np.array([region["fpr"] for region in regions], dtype=np.float64)
+    shown = np.where(fprs > 0, fprs, np.nan)  # a "no" region has budget 0: nothing to draw on a log axis
+    budget_ax.bar(index, shown, color=NONMEMBER_COLOUR)
+    budget_ax.set_yscale("log")
+    budget_ax.set_ylabel("false-positive budget (log scale)")
+    bytes_ax.bar(index, [region["filter_bytes"] for region in regions], color=MEMBER_COLOUR)
+    bytes_ax.set_ylabel("backup filter bytes")
+    for ax in (budget_ax, bytes_ax):
+        ax.set_xticks(index, labels)
+        ax.set_xlabel("region")
+    for i, region in enumerate(regions):
+        if region["mode"] != "bloom":
+            bytes_ax.annotate(f'"{region["mode"]}"', (i, 0), ha="center", va="bottom", fontsize=8)
+    return figure
+
+
+def size_figure(size: dict, baseline: dict) -> Figure:
+    """The artifact (model, filters, the rest of the container) against a plain Bloom filter at the
+    same target and the lower bound n log2(1/F) bits of any filter."""
+    figure, (ax,) = _figure()
+    rows = ["lower bound", "this artifact", "plain Bloom filter"]
+    rest = size["total_bytes"] - size["model_bytes"] - size["filter_bytes"]
+    ax.barh(0, baseline["lower_bound_bytes"], color=BOUNDARY_COLOUR)
+    left = 0.0
+    for part, value, colour in (("model", size["model_bytes"], MEMBER_COLOUR),
+                                ("filters", size["filter_bytes"], NONMEMBER_COLOUR),
+                                ("header and layout", rest, BOUNDARY_COLOUR)):
+        ax.barh(1, value, left=left, color=colour, label=part, alpha=1.0 if part != "header and layout" else 0.5)
+        left += value
+    ax.barh(2, baseline["bloom_bytes"], color=NONMEMBER_COLOUR, alpha=0.5)
+    for row, value in enumerate((baseline["lower_bound_bytes"], size["total_bytes"], baseline["bloom_bytes"])):
+        ax.annotate(f" {value:,.0f} bytes", (value, row), va="center", fontsize=8)
+    ax.set_yticks(range(len(rows)), rows)
+    ax.set_xlabel("bytes")
+    ax.set_xlim(0, max(baseline["bloom_bytes"], size["total_bytes"]) * 1.25)
+    ax.legend(loc="lower right", fontsize=8)
+    return figure
+
+
+def drift_figure(drift: dict, heldout: dict, false_negatives: int, target: float) -> Figure:
+    """The version in service against this build: held-out false-positive rate (bar: measured,
+    mark: upper bound) beside the target, and today's members each one misses."""
+    figure, (fpr_ax, missed_ax) = _figure(columns=2)
+    names = [f"version {drift['current_version']}\nin service", "this build"]
+    rates = [drift["heldout_fpr"], heldout["fpr"]]
+    uppers = [drift["heldout_fpr_upper"], heldout["fpr_upper"]]
+    fpr_ax.bar([0, 1], rates, color=[BOUNDARY_COLOUR, NONMEMBER_COLOUR])
+    fpr_ax.plot([0, 1], uppers, linestyle="none", marker="_", markersize=30, color="black", label="upper bound")
+    fpr_ax.axhline(target, color=MEMBER_COLOUR, linestyle="--", label="target")
+    fpr_ax.set_xticks([0, 1], names)
+    fpr_ax.set_ylabel("held-out false-positive rate")
+    fpr_ax.set_ylim(0, max(target, *uppers) * 1.3)  # headroom for the legend above the bars
+    fpr_ax.legend(loc="upper left", ncols=2, fontsize=8)
+    missed = [drift["members_missed"], false_negatives]
+    missed_ax.bar([0, 1], missed, color=[BOUNDARY_COLOUR, NONMEMBER_COLOUR])
+    for x, value in enumerate(missed):
+        missed_ax.annotate(f"{value:,}", (x, value), ha="center", va="bottom", fontsize=8)
+    missed_ax.set_xticks([0, 1], names)
+    missed_ax.set_ylim(0, max(1, *missed) * 1.2)  # counts start at 0, even when all are 0
+    missed_ax.set_ylabel("today's members answered no")
+    return figure
+
+
+def png_data_uri(figure: Figure) -> str:
+    """The figure as a `data:image/png;base64,...` URI."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    buffer = io.BytesIO()
+    FigureCanvasAgg(figure).print_png(buffer)  # renders at the figure's own dpi
+    return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+# ---------------------------------------------------------------------------------------------------
+# Tables and the page.
+# ---------------------------------------------------------------------------------------------------
+
+
+def _table(headers: Sequence[str], rows: Sequence[Sequence[object]]) -> str:
+    head = "".join(f"<th>{html.escape(str(h))}</th>" for h in headers)
+    body = "".join("<tr>" + "".join(f"<td>{html.escape(str(cell))}</td>" for cell in row) + "</tr>" for row in rows)
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _pairs(rows: Sequence[tuple[str, object]]) -> str:
+    body = "".join(f"<tr><th>{html.escape(name)}</th><td>{html.escape(str(value))}</td></tr>" for name, value in rows)
+    return f"<table><tbody>{body}</tbody></table>"
+
+
+def _percent(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:.4%}"
+
+
+def _signed_percent(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:+.1%}"
+
+
+def _share(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:.1%}"
+
+
+def _count(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:,}"
+
+
+_GATE_VALUE_FORMATS: dict[str, Callable[[float | None], str]] = {
+    "fpr_upper": _percent,
+    "max_size_growth": _signed_percent,
+    "max_member_drop": _share,
+}
+
+
+def decision_text(report: dict) -> str:
+    if report["gate"]["passed"]:
+        return f"published as version {report['version']}"
+    return "refused by the gate"
+
+
+def key_numbers(report: dict) -> list[tuple[str, object]]:
+    corpus, held, size, base = report["corpus"], report["heldout"], report["size"], report["baseline"]
+    split = corpus["split"]
+    return [
+        ("decision", decision_text(report)),
+        ("version", "none (refused)" if report["version"] is None else report["version"]),
+        ("build", report["build_id"]),
+        ("built at", report["built_at"]),
+        ("target false-positive rate", _percent(report["target_fpr"])),
+        ("planned for (aim)", _percent(report["aim_fpr"])),
+        ("members", _count(corpus["members"])),
+        ("non-members (train / validation / held-out)",
+         f"{corpus['non_members']:,} ({split['train']:,} / {split['validation']:,} / {split['heldout']:,})"),
+        ("lookups", _count(corpus["lookups"]) + ("" if corpus["has_counts"] else " (no counts: one a key)")),
+        ("held-out false-positive rate", _percent(held["fpr"])),
+        (f"held-out upper bound ({held['confidence']:.0%})", _percent(held["fpr_upper"])),
+        ("held-out false positives (keys / lookups)", f"{held['false_positives']:,} / {held['false_positive_lookups']:,}"),
+        ("held-out effective sample", f"{held['effective_sample']:,.1f}"),
+        ("expected rate on validation lookups", _percent(report["expected_fpr"])),
+        ("false negatives", report["false_negatives"]),
+        ("artifact bytes", _count(size["total_bytes"])),
+        ("model bytes / filter bytes", f"{size['model_bytes']:,} / {size['filter_bytes']:,}"),
+        ("bits per member", f"{size['bits_per_member']:.2f}"),
+        ("plain Bloom filter bytes (ratio)", f"{base['bloom_bytes']:,} ({base['ratio']:.3f})"),
+        ("lower bound bytes", f"{base['lower_bound_bytes']:,.0f}"),
+        ("KL divergence / AUC", f"{report['separation']['kl_bits']:.3f} bits / {report['separation']['auc']:.4f}"),
+        ("model", f"{report['model']['trees']} trees"),
+    ]
+
+
+def gate_rows(report: dict) -> list[list[str]]:
+    rows = []
+    for check in report["gate"]["checks"]:
+        show = _GATE_VALUE_FORMATS.get(check["rule"], _count)
+        result = "passed" if check["passed"] else "REFUSED"
+        rows.append([check["rule"], result, show(check["value"]), show(check["limit"]) if check["limit"] is not None else "off",
+                     check["detail"]])
+    return rows
+
+
+def region_rows(regions: Sequence[dict]) -> list[list[object]]:
+    return [
+        [f"R{i}", "-inf" if r["score_from"] is None else r["score_from"], "+inf" if r["score_to"] is None else r["score_to"],
+         f"{r['members']:,}", f"{r['nonmember_share']:.4%}", f"{r['fpr']:.4%}", r["mode"], f"{r['filter_bytes']:,}"]
+        for i, r in enumerate(regions)
+    ]
+
+
+def drift_rows(drift: dict, report: dict) -> list[tuple[str, object]]:
+    if drift["status"] == "none":
+        return [("version in service", "none: this is the store's first version")]
+    if drift["status"] == "unreadable":
+        return [("version in service", drift["current_version"] or "unknown"), ("could not be evaluated", drift["error"])]
+    return [
+        ("version in service", drift["current_version"]),
+        ("its bytes / this build's", f"{drift['artifact_bytes']:,} / {report['size']['total_bytes']:,}"),
+        ("its members / today's", f"{drift['members_built']:,} / {report['corpus']['members']:,}"),
+        ("today's members it misses", f"{drift['members_missed']:,} ({drift['members_missed_share']:.2%})"),
+        ("its held-out false-positive rate", _percent(drift["heldout_fpr"])),
+        ("its held-out upper bound", _percent(drift["heldout_fpr_upper"])),
+    ]
+
+
+_STYLE = """
+body { font-family: system-ui, sans-serif; margin: 2em auto; max-width: 62em; color: #111827; }
+h1 { font-size: 1.4em; } h2 { font-size: 1.15em; margin-top: 1.6em; }
+table { border-collapse: collapse; margin: 0.6em 0; font-size: 0.9em; }
+th, td { border: 1px solid #d1d5db; padding: 0.25em 0.6em; text-align: left; vertical-align: top; }
+thead th { background: #f3f4f6; }
+.passed { color: #15803d; } .refused { color: #b91c1c; }
+img { display: block; max-width: 100%; }
+"""
+
+
+def _image(uri: str, alt: str) -> str:
+    width, height = (round(side * FIGURE_DPI) for side in FIGURE_INCHES)
+    return f'<img src="{uri}" width="{width}" height="{height}" alt="{html.escape(alt)}"/>'
+
+
+def render_report_page(report: dict, scores: ScoreSample) -> str:
+    """The whole page as text."""
+    passed = report["gate"]["passed"]
+    title = f"tamis build {report['build_id']}: {decision_text(report)}"
+    drift = report["drift"]
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8"/>',
+        f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body>",
+        f"<h1>{html.escape(title)}</h1>",
+        f'<p class="{"passed" if passed else "refused"}"><strong>{html.escape(decision_text(report))}</strong></p>',
+    ]
+    parts += [f"<p class=\"refused\">{html.escape(reason)}</p>" for reason in report["gate"]["reasons"]]
+    parts += [
+        "<h2>Gate</h2>",
+        _table(["rule", "result", "value", "limit", "detail"], gate_rows(report)),
+        "<h2>Key numbers</h2>",
+        _pairs(key_numbers(report)),
+        "<h2>Score distributions</h2>",
+        _image(png_data_uri(score_figure(scores, boundaries_of(report["regions"]))), "score distributions"),
+        "<h2>Regions</h2>",
+        _image(png_data_uri(regions_figure(report["regions"])), "region budgets and filter sizes"),
+        _table(["region", "scores from", "to", "members", "non-member share", "budget", "mode", "filter bytes"],
+               region_rows(report["regions"])),
+        "<h2>Size</h2>",
+        _image(png_data_uri(size_figure(report["size"], report["baseline"])), "size against a plain Bloom filter"),
+        "<h2>Drift of the version in service</h2>",
+        _pairs(drift_rows(drift, report)),
+    ]
+    if drift["status"] == "evaluated":
+        figure = drift_figure(drift, report["heldout"], report["false_negatives"], report["target_fpr"])
+        parts.append(_image(png_data_uri(figure), "drift of the version in service"))
+    parts += [
+        "<h2>Timings</h2>",
+        _table(["stage", "seconds"], [[stage, f"{seconds:.1f}"] for stage, seconds in report["timings"].items()]),
+        "</body></html>",
+    ]
+    return "\n".join(parts) + "\n"
+
+
+def write_report_page(folder: Path, report: dict, scores: ScoreSample) -> Path:
+    """Write `report.html` into `folder` (atomically) and return its path."""
+    path = folder / REPORT_PAGE_NAME
+    publish.write_atomically(path, render_report_page(report, scores).encode("utf-8"))
+    return path

@@ -1,0 +1,169 @@
+"""The build flow's operations: progress events, retries of the corpus read, failures that publish
+nothing, and a held-out part too small for the target stopping the build before training."""
+
+import errno
+
+import pytest
+
+import flows.build as build
+from pipeline import cli, publish
+from pipeline import corpus as corpus_stage
+from pipeline import verify
+from pipeline.errors import BadInput
+from small_build import SMALL_MODEL, small_config, write_corpus
+
+
+@pytest.fixture(scope="module")
+def corpus_files(tmp_path_factory):
+    return write_corpus(tmp_path_factory.mktemp("flow"))
+
+
+@pytest.fixture(scope="module")
+def published(corpus_files, tmp_path_factory):
+    """One build into a fresh store, with every progress event it sent."""
+    store = tmp_path_factory.mktemp("published") / "store"
+    events = []
+    outcome = build.build_flow(small_config(*corpus_files, store), progress=events.append)
+    return outcome, events
+
+
+@pytest.fixture
+def quick_retries(monkeypatch):
+    """The corpus task with its retries kept but without the waits between them."""
+    monkeypatch.setattr(build, "read_corpus", build.read_corpus.with_options(retry_delay_seconds=0))
+
+
+def _store_entries(store):
+    return sorted(p.name for p in store.iterdir()) if store.exists() else []
+
+
+def test_every_stage_starts_and_ends_in_order(published):
+    outcome, events = published
+    assert outcome.published
+    ends = [(e.stage, e.kind) for e in events if e.kind != "step"]
+    assert ends == [(stage, kind) for stage in build.STAGES for kind in ("start", "done")]
+    assert all(e.seconds >= 0 for e in events)
+
+
+def test_long_stages_report_their_advance(published):
+    outcome, events = published
+    steps = {stage: [e for e in events if e.stage == stage and e.kind == "step"] for stage in ("features", "model", "filters")}
+    corpus = outcome.report["corpus"]
+    features = steps["features"]
+    assert features[-1].done == features[-1].total == corpus["members"] + corpus["split"]["train"] + corpus["split"]["validation"]
+    assert [e.done for e in features] == sorted(e.done for e in features)
+    assert steps["filters"][-1].done == steps["filters"][-1].total == corpus["members"]
+    assert len(steps["filters"]) == len(outcome.report["regions"])
+    # one step per priced checkpoint: the model report lists them all
+    assert [e.done for e in steps["model"]] == list(range(1, len(outcome.report["model"]["candidates"]) + 1))
+
+
+def test_the_corpus_read_is_retried_after_an_os_error(corpus_files, tmp_path, monkeypatch, quick_retries):
+    real, calls = corpus_stage.load_corpus, []
+
+    def flaky(*args):
+        calls.append(args)
+        if len(calls) == 1:
+            raise OSError(errno.EIO, "Input/output error (a network filesystem hiccup)")
+        return real(*args)
+
+    monkeypatch.setattr(corpus_stage, "load_corpus", flaky)
+    # a 0.1% target stops the build right after the corpus stage (min_heldout): reaching that check
+    # shows the second read delivered the corpus, without paying for the rest of a build
+    with pytest.raises(BadInput, match="^min_heldout: "):
+        build.build_flow(small_config(*corpus_files, tmp_path / "store", target=0.001))
+    assert len(calls) == 2
+
+
+def test_bad_input_is_never_retried_and_writes_nothing(corpus_files, tmp_path, monkeypatch, quick_retries):
+    calls = []
+
+    def refuses(*args):
+        calls.append(args)
+        raise BadInput("members.txt: line 3 has an empty key; remove it")
+
+    monkeypatch.setattr(corpus_stage, "load_corpus", refuses)
+    with pytest.raises(BadInput, match="line 3 has an empty key"):
+        build.build_flow(small_config(*corpus_files, tmp_path / "store"))
+    assert len(calls) == 1 and _store_entries(tmp_path / "store") == []
+
+
+def test_the_retry_condition_follows_the_error_type():
+    class State:
+        def __init__(self, error):
+            self.error = error
+
+        def result(self, raise_on_failure):
+            assert raise_on_failure is False
+            return self.error
+
+    assert build.retry_on_transient(None, None, State(OSError(errno.ESTALE, "Stale file handle")))
+    assert build.retry_on_transient(None, None, State(TimeoutError("read timed out")))
+    assert not build.retry_on_transient(None, None, State(BadInput("no key column")))
+    assert not build.retry_on_transient(None, None, State(ValueError("a bug")))
+
+
+def _small_toml(directory, corpus_files, store, target=0.05):
+    members, lookups = corpus_files
+    path = directory / "small.toml"
+    model = ", ".join(f"{k} = {v!r}".replace("'", '"') for k, v in SMALL_MODEL.items())
+    path.write_text(
+        f'[corpus]\nmembers = "{members}"\nnon_members = "{lookups}"\n[target]\nfpr = {target}\n'
+        f'[model]\n{model.replace(", ", chr(10))}\n[store]\npath = "{store}"\n'
+    )
+    return path
+
+
+def test_a_failing_stage_publishes_nothing_and_says_which_stage(published, corpus_files, tmp_path, monkeypatch, capsys):
+    outcome, _ = published
+    store = outcome.folder.parent
+    before = _store_entries(store)
+
+    def broken(*args):
+        raise RuntimeError("the disk said no")
+
+    monkeypatch.setattr(verify, "verify_artifact", broken)
+    with pytest.raises(build.BuildFailed) as failed:
+        build.build_flow(small_config(*corpus_files, store))
+    assert failed.value.stage == "verify" and isinstance(failed.value.error, RuntimeError)
+    assert str(failed.value) == "stage verify failed: RuntimeError: the disk said no"
+    # no new version, CURRENT unchanged, and the staging folder is gone
+    assert _store_entries(store) == before and publish.current_version(store) == outcome.version
+
+
+
+def test_the_command_line_exits_3_with_the_stage_and_the_reason_first(published, corpus_files, tmp_path, monkeypatch, capsys):
+    outcome, _ = published
+    store = outcome.folder.parent
+    before = _store_entries(store)
+
+    def broken(*args):
+        raise MemoryError("featurize could not allocate the matrix")
+
+    monkeypatch.setattr(build, "featurize", broken)
+    assert cli.main(["build", str(_small_toml(tmp_path, corpus_files, store))]) == cli.EXIT_FAILED
+    lines = capsys.readouterr().err.splitlines()
+    reason = next(i for i, line in enumerate(lines) if line.startswith("tamis: "))
+    # after the progress lines (the corpus stage's), the reason on one line, then the traceback
+    assert "corpus    done in" in lines[reason - 1]
+    assert lines[reason] == (
+        "tamis: the build failed: stage features failed: MemoryError: featurize could not allocate the matrix; "
+        f"nothing was published (version {outcome.version} stays current)"
+    )
+    assert lines[reason + 1].startswith("Traceback") and _store_entries(store) == before
+
+
+def test_a_held_out_part_too_small_for_the_target_stops_before_training(corpus_files, tmp_path, monkeypatch, capsys):
+    def never(*args, **kwargs):
+        raise AssertionError("no stage after the corpus may run")
+
+    monkeypatch.setattr(build, "featurize", never)
+    monkeypatch.setattr(build, "fit_model", never)
+    # 0.1% needs ceil(ln 0.05 / ln 0.999) = 2,995 draws; 12,000 held-out keys with heavy-tailed
+    # counts are worth only a few hundred
+    assert cli.main(["build", str(_small_toml(tmp_path, corpus_files, tmp_path / "store", target=0.001))]) == cli.EXIT_BAD_INPUT
+    err = capsys.readouterr().err
+    # the check belongs to the corpus stage, which never ended: stderr holds the reason alone
+    assert err.count("\n") == 1 and err.startswith("tamis: min_heldout: the corpus has ")
+    assert "held-out keys with lookup counts, worth an effective sample of" in err and "at least 2,995 draws" in err
+    assert _store_entries(tmp_path / "store") == []

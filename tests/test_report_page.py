@@ -1,0 +1,124 @@
+"""The report page of a real small build: a well-formed document, its figures decodable PNGs of the
+size asked for, and the build's key numbers in its text."""
+
+import base64
+import copy
+import io
+import struct
+import xml.etree.ElementTree as ET
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from pipeline import cli
+from pipeline.report_page import FIGURE_DPI, FIGURE_INCHES, REPORT_PAGE_NAME, ScoreSample, render_report_page
+from small_build import small_config, write_corpus
+from tamis_testing import plain_build_flow
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+DATA_URI = "data:image/png;base64,"
+PIXELS = tuple(round(side * FIGURE_DPI) for side in FIGURE_INCHES)
+
+
+@pytest.fixture(scope="module")
+def builds(tmp_path_factory):
+    """Two builds of one corpus into one store: the second has a version in service (drift)."""
+    root = tmp_path_factory.mktemp("page")
+    members, lookups = write_corpus(root)
+    with plain_build_flow() as build_flow:  # the flow's own body, without Prefect's start-up
+        first = build_flow(small_config(members, lookups, root / "store"))
+        second = build_flow(small_config(members, lookups, root / "store"))
+    return first, second
+
+
+def parse(page: str) -> ET.Element:
+    """The page through an XML parser: it fails on any unclosed tag, bad nesting or stray entity."""
+    assert page.startswith("<!DOCTYPE html>\n")
+    return ET.fromstring(page.removeprefix("<!DOCTYPE html>\n"))
+
+
+def png_images(root: ET.Element) -> list[bytes]:
+    sources = [img.get("src") for img in root.iter("img")]
+    assert all(src.startswith(DATA_URI) for src in sources)
+    return [base64.b64decode(src.removeprefix(DATA_URI), validate=True) for src in sources]
+
+
+def ihdr_size(png: bytes) -> tuple[int, int]:
+    """Width and height from the IHDR chunk, the first after the signature (PNG spec, W3C 2003 / ISO 15948)."""
+    length, kind = struct.unpack(">I4s", png[8:16])
+    assert kind == b"IHDR" and length == 13
+    return struct.unpack(">II", png[16:24])
+
+
+def text_of(root: ET.Element) -> str:
+    return " ".join("".join(root.itertext()).split())
+
+
+def test_the_page_is_a_well_formed_document_with_four_decodable_figures(builds):
+    _, second = builds
+    root = parse(second.page.read_text(encoding="utf-8"))
+    assert root.tag == "html" and root.find("head/title") is not None
+    images = png_images(root)
+    assert len(images) == 4  # scores, regions, size, drift
+    for png in images:
+        assert png.startswith(PNG_SIGNATURE)
+        assert ihdr_size(png) == PIXELS
+        decoded = Image.open(io.BytesIO(png))  # Pillow decodes the whole image, checksums included
+        decoded.load()
+        assert decoded.size == PIXELS
+
+
+def test_the_page_shows_the_key_numbers(builds):
+    _, second = builds
+    report = second.report
+    text = text_of(parse(second.page.read_text(encoding="utf-8")))
+    assert f"published as version {second.version}" in text
+    assert f"{report['size']['total_bytes']:,}" in text
+    assert f"{report['heldout']['fpr']:.4%}" in text and f"{report['heldout']['fpr_upper']:.4%}" in text
+    assert f"{report['baseline']['bloom_bytes']:,}" in text
+    assert f"{report['drift']['heldout_fpr']:.4%}" in text
+    for check in report["gate"]["checks"]:
+        assert check["rule"] in text
+    for region in report["regions"]:
+        assert f"{region['members']:,}" in text
+
+
+def test_the_first_version_has_no_drift_figure(builds):
+    first, _ = builds
+    root = parse(first.page.read_text(encoding="utf-8"))
+    assert len(png_images(root)) == 3
+    assert "none: this is the store's first version" in text_of(root)
+
+
+def test_a_refused_build_says_so_and_lists_its_reasons(builds):
+    _, second = builds
+    report = copy.deepcopy(second.report)
+    report["version"] = None
+    report["gate"]["passed"] = False
+    report["gate"]["reasons"] = ["max_artifact_bytes: the artifact has 4000 bytes, over the limit of 100 <sic> & co"]
+    scores = ScoreSample(np.array([5, 9, 12]), np.array([-3, 0, 7, 8]), np.array([1, 4, 1, 2]))
+    root = parse(render_report_page(report, scores))
+    text = text_of(root)
+    assert "refused by the gate" in text and "over the limit of 100 <sic> & co" in text  # escaped, then parsed back
+
+
+def test_show_prints_the_page_path(builds, capsys):
+    _, second = builds
+    store = second.folder.parent
+    assert cli.main(["show", str(store)]) == 0
+    out = capsys.readouterr().out
+    assert f"report page: {store / str(second.version) / REPORT_PAGE_NAME}" in out
+    assert "in service: version 1 misses 0 of today's members" in out
+
+
+
+def test_one_region_and_tied_scores_still_draw(builds):
+    # the edge of a model that cannot separate: every key the same score, one region answering yes
+    first, _ = builds
+    report = copy.deepcopy(first.report)
+    report["regions"] = [{"score_from": None, "score_to": None, "members": 10, "nonmember_share": 1.0, "fpr": 1.0,
+                          "mode": "yes", "filter_bytes": 0}]
+    scores = ScoreSample(np.zeros(10, dtype=np.int64), np.zeros(4, dtype=np.int64), np.array([1, 1, 2, 5]))
+    images = png_images(parse(render_report_page(report, scores)))
+    assert len(images) == 3 and all(ihdr_size(png) == PIXELS for png in images)
