@@ -5,12 +5,19 @@ them, reports progress (`pipeline.progress.StageEvent`) and decides what the sto
 result. A stage that raises ends the build: BadInput passes through unchanged (the CLI's exit 2),
 anything else becomes BuildFailed naming the stage. Either way nothing is published and the
 build's staging folder is removed.
+
+The stages that touch every key (features, scoring, filter insertion, verification) cut their keys
+into chunks of `compute.chunk_keys` and run one task a chunk on the flow's task runner: threads on
+this machine, or the workers of a Dask cluster when `compute.cluster` names one (`flow_for`). Chunks
+are computed on their own and combined in order (filter bits by OR), so the artifact never depends
+on the chunk size or on where the chunks ran.
 """
 
 from __future__ import annotations
 
+import os
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,6 +25,7 @@ from pathlib import Path
 import numpy as np
 from prefect import flow, task
 from prefect.cache_policies import NO_CACHE
+from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
 from pipeline import corpus as corpus_stage
@@ -25,25 +33,22 @@ from pipeline import publish, report, verify
 from pipeline.config import BuildConfig, require_paths
 from pipeline.drift import Drift, measure_drift
 from pipeline.errors import BadInput
-from pipeline.features import default_feature_spec, feature_count, featurize
-from pipeline.filters import build_filters
+from pipeline.features import default_feature_spec, featurize
+from pipeline.filters import RegionFilter, chunk_words, empty_filters, merge_words
 from pipeline.model import fit_model
 from pipeline.package import package_artifact
 from pipeline.progress import Progress, StageEvent, no_progress
 from pipeline.provenance import build_provenance
 from pipeline.regions import plan_regions, region_of
 from pipeline.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
-from pipeline.trees import score_batch
+from pipeline.loader import open_filter
+from pipeline.trees import Forest, score_batch
 
 STAGES = ("corpus", "features", "model", "regions", "filters", "package", "verify", "drift", "report", "publish")
 
 # Reading the corpus is the stage that touches files other systems write, often on a network
 # filesystem whose hiccups clear within seconds: three more tries over about 40 s, then give up.
 CORPUS_RETRY_DELAYS = (2, 8, 30)
-
-# Features are computed in chunks of this many keys so that their progress can be shown; every
-# row is computed on its own, so the matrix is the same as in one call.
-FEATURE_CHUNK_KEYS = 1 << 16
 
 # A stage's report of how far it is: (units done, units in all or None, unit name, note).
 Step = Callable[[int, int | None, str, str], None]
@@ -93,25 +98,53 @@ def read_corpus(config: BuildConfig) -> corpus_stage.Corpus:
     return corpus_stage.load_corpus(config.corpus.members, config.corpus.non_members, config.corpus)
 
 
+def chunks_of(items: Sequence, size: int) -> list[Sequence]:
+    """Consecutive slices of at most `size` items; one empty slice when there are none."""
+    return [items[start : start + size] for start in range(0, len(items), size)] or [items[:0]]
+
+
+# A way to run a chunk task over pieces: (task, pieces, shared arguments) -> results in order.
+ChunkMap = Callable[..., list]
+
+
+def map_parts(run_chunks: ChunkMap, chunk_task, parts: dict[str, Sequence], chunk_size: int, *shared) -> dict[str, np.ndarray]:
+    """Run `chunk_task(piece, *shared)` on every chunk of every part; each part's results joined in order."""
+    pieces = {name: chunks_of(items, chunk_size) for name, items in parts.items()}
+    results = iter(run_chunks(chunk_task, [piece for name in parts for piece in pieces[name]], *shared))
+    return {name: np.concatenate([next(results) for _ in pieces[name]]) for name in parts}
+
+
 @_stage("features")
-def extract_features(corpus: corpus_stage.Corpus, spec: dict, step: Step) -> dict[str, np.ndarray]:
-    parts = {"members": corpus.members, "train": corpus.train.keys, "validation": corpus.validation.keys}
-    total = sum(len(keys) for keys in parts.values())
-    done = 0
-    matrices = {}
-    for name, keys in parts.items():
-        matrix = np.empty((len(keys), feature_count(spec)), dtype=np.float32)
-        for start in range(0, len(keys), FEATURE_CHUNK_KEYS):
-            chunk = keys[start : start + FEATURE_CHUNK_KEYS]
-            matrix[start : start + len(chunk)] = featurize(chunk, spec)
-            done += len(chunk)
-            step(done, total, "keys", name)
-        matrices[name] = matrix
-    return matrices
+def featurize_chunk(keys: list[bytes], spec: dict) -> np.ndarray:
+    return featurize(keys, spec)
+
+
+@_stage("scoring")
+def score_chunk(X: np.ndarray, forest: Forest) -> np.ndarray:
+    return score_batch(forest, X)
+
+
+@_stage("insertion")
+def fill_chunk(piece: tuple[list[bytes], np.ndarray], filters: list[RegionFilter], hash_seed: int) -> list[np.ndarray]:
+    """The bits of one chunk of members, given as (keys, their regions)."""
+    keys, regions = piece
+    return chunk_words(filters, keys, regions, hash_seed)
+
+
+@_stage("answers")
+def answer_chunk(keys: list[bytes], path: Path) -> np.ndarray:
+    """The answers of the artifact at `path`, opened as a service opens it, for one chunk of keys."""
+    return open_filter(path).contains_many(keys)
+
+
+def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: corpus_stage.KeySet, spec: dict, config: BuildConfig) -> dict[str, np.ndarray]:
+    """Feature matrices of all members, the training sample and the validation non-members."""
+    parts = {"members": corpus.members, "train": train.keys, "validation": corpus.validation.keys}
+    return map_parts(run_chunks, featurize_chunk, parts, config.compute.chunk_keys, spec)
 
 
 @_stage("model")
-def train_model(corpus, X: dict, aim: float, config: BuildConfig, step: Step):
+def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config: BuildConfig, step: Step):
     priced = 0
 
     def filter_bytes(member_scores, val_scores, val_weights) -> float:
@@ -125,7 +158,7 @@ def train_model(corpus, X: dict, aim: float, config: BuildConfig, step: Step):
     return fit_model(
         X["members"],
         X["train"],
-        corpus.train.counts.astype(np.float64),
+        train.counts.astype(np.float64),
         X["validation"],
         corpus.validation.counts.astype(np.float64),
         filter_bytes,
@@ -133,27 +166,22 @@ def train_model(corpus, X: dict, aim: float, config: BuildConfig, step: Step):
     )
 
 
-@_stage("regions")
-def choose_regions(corpus, X: dict, forest, aim: float, config: BuildConfig):
-    member_scores = score_batch(forest, X["members"])
-    val_scores = score_batch(forest, X["validation"])
-    plan = plan_regions(member_scores, val_scores, corpus.validation.counts, aim, config.regions)
-    return plan, ScoreSample(member_scores, val_scores, corpus.validation.counts)
+def choose_regions(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, aim: float, config: BuildConfig):
+    """Scores of the members and validation non-members, and the region plan they lead to."""
+    parts = {"members": X["members"], "validation": X["validation"]}
+    scores = map_parts(run_chunks, score_chunk, parts, config.compute.chunk_keys, forest)
+    plan = plan_regions(scores["members"], scores["validation"], corpus.validation.counts, aim, config.regions)
+    return plan, ScoreSample(scores["members"], scores["validation"], corpus.validation.counts)
 
 
-@_stage("filters")
-def fill_filters(corpus, member_scores: np.ndarray, plan, hash_seed: int, step: Step):
-    """One region at a time (each holds exactly its members, as in one build_filters call), so the
-    progress can be shown in members inserted."""
+def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, config: BuildConfig) -> list[RegionFilter]:
+    """One filter per region holding exactly its members: the bits of each chunk of members, ORed."""
     regions = region_of(member_scores, plan.boundaries)
-    filters, done = [], 0
-    for index, fpr in enumerate(plan.fprs):
-        picked = np.flatnonzero(regions == index)
-        keys = [corpus.members[i] for i in picked]
-        filters += build_filters(keys, np.zeros(len(keys), dtype=np.int64), np.array([fpr]), hash_seed)
-        done += len(keys)
-        step(done, len(corpus.members), "members", f"region {index}")
-    return filters
+    filters = empty_filters(regions, plan.fprs, config.filters.hash_seed)
+    size = config.compute.chunk_keys
+    pieces = list(zip(chunks_of(corpus.members, size), chunks_of(regions, size)))
+    words = run_chunks(fill_chunk, pieces, filters, config.filters.hash_seed)
+    return merge_words(filters, words)
 
 
 @_stage("package")
@@ -170,9 +198,11 @@ def write_package(path: Path, spec: dict, forest, plan, filters, hash_seed: int,
     )
 
 
-@_stage("verify")
-def verify_package(path: Path, corpus, config: BuildConfig) -> verify.Verification:
-    return verify.verify_artifact(path, corpus.members, corpus.heldout, corpus.has_counts, config.gate.confidence)
+def verify_package(run_chunks: ChunkMap, path: Path, corpus, config: BuildConfig) -> verify.Verification:
+    """Every member and every held-out key through the written artifact, chunk by chunk."""
+    parts = {"members": corpus.members, "heldout": corpus.heldout.keys}
+    answers = map_parts(run_chunks, answer_chunk, parts, config.compute.chunk_keys, path)
+    return verify.verification(answers["members"], answers["heldout"], corpus.heldout, corpus.has_counts, config.gate.confidence)
 
 
 @_stage("drift")
@@ -214,6 +244,25 @@ class _Stages:
         self.timings[name] = round(time.perf_counter() - started, 3)
         self.progress(StageEvent(name, "done", seconds=self.timings[name]))
 
+    def chunks(self, name: str) -> ChunkMap:
+        """A ChunkMap for stage `name`: one task run a piece on the flow's task runner, all submitted
+        at once, results taken in order; the stage's progress counts the keys of the pieces done (a
+        piece is a sequence of keys or rows, or a tuple whose first item is one)."""
+        step = self.step(name)
+
+        def run_chunks(chunk_task, pieces: list, *shared) -> list:
+            # quote: Prefect would otherwise walk every key of every piece looking for futures
+            futures = [chunk_task.submit(quote(piece), *(quote(arg) for arg in shared)) for piece in pieces]
+            sizes = [len(piece[0] if isinstance(piece, tuple) else piece) for piece in pieces]
+            results, done = [], 0
+            for future, size in zip(futures, sizes):
+                results.append(future.result())
+                done += size
+                step(done, sum(sizes), "keys", chunk_task.name)
+            return results
+
+        return run_chunks
+
     def run(self, name: str, stage_task, *args, stepped: bool = False):
         """Run a stage's task; a `stepped` one gets a Step reporter as its last argument."""
         with self.stage(name):
@@ -222,7 +271,11 @@ class _Stages:
             return stage_task(*(quote(arg) for arg in (*args, *extra)))
 
 
-@flow(name="tamis-build", log_prints=False, validate_parameters=False)
+# Chunk tasks on this machine: one thread a core (numpy releases the GIL in the heavy loops).
+LOCAL_TASK_RUNNER = ThreadPoolTaskRunner(max_workers=os.cpu_count() or 1)
+
+
+@flow(name="tamis-build", log_prints=False, validate_parameters=False, task_runner=LOCAL_TASK_RUNNER)
 def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOutcome:
     """Build, verify and (when the gate passes) publish one artifact into the config's store.
 
@@ -244,17 +297,22 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
     provenance = build_provenance(config, corpus)
     aim = verify.aim_fpr(config.target.fpr, heldout_size, config.gate.confidence, config.gate.aim_sigmas)
     spec = default_feature_spec()
-    X = stages.run("features", extract_features, corpus, spec, stepped=True)
-    choice = stages.run("model", train_model, corpus, X, aim, config, stepped=True)
-    plan, scores = stages.run("regions", choose_regions, corpus, X, choice.forest, aim, config)
-    filters = stages.run("filters", fill_filters, corpus, scores.member_scores, plan, config.filters.hash_seed, stepped=True)
+    train = corpus_stage.sample_keys(corpus.train, config.model.train_nonmembers, config.model.seed)
+    with stages.stage("features"):
+        X = extract_features(stages.chunks("features"), corpus, train, spec, config)
+    choice = stages.run("model", train_model, corpus, train, X, aim, config, stepped=True)
+    with stages.stage("regions"):
+        plan, scores = choose_regions(stages.chunks("regions"), corpus, X, choice.forest, aim, config)
+    with stages.stage("filters"):
+        filters = fill_filters(stages.chunks("filters"), corpus, scores.member_scores, plan, config)
 
     staging = publish.new_staging(store, provenance["build_id"])
     try:
         artifact = staging / publish.ARTIFACT_NAME
         package_args = (artifact, spec, choice.forest, plan, filters, config.filters.hash_seed, provenance)
         stages.run("package", write_package, *package_args, None)
-        checked = stages.run("verify", verify_package, artifact, corpus, config)
+        with stages.stage("verify"):
+            checked = verify_package(stages.chunks("verify"), artifact, corpus, config)
         # the measured figures go into the header; sections are unchanged, so what was verified is what ships
         write_package(*package_args, checked.heldout.as_report())
 

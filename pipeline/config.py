@@ -11,6 +11,7 @@ A config file has these tables (every key optional unless marked; `configs/demo.
     [gate]     the fields of GateSettings
     [store]    path*, keep
     [schedule] cron, timezone
+    [compute]  chunk_keys, cluster (a Dask scheduler's address; empty runs on this machine)
 
 An unknown key, a wrong type or a value out of range is a ConfigError that names the key path and
 what is allowed.
@@ -111,6 +112,16 @@ class ScheduleSettings:
 
 
 @dataclass(frozen=True)
+class ComputeSettings:
+    # Keys per chunk of the per-chunk stages (features, scoring, filter insertion, verification):
+    # each chunk is one task, so a chunk is the unit of progress and of work sent to a cluster.
+    # The values never depend on it. 2^20 keys hold about 0.4 GB of features.
+    chunk_keys: int = field(default=1 << 20, metadata={"range": (1, 1 << 30)})
+    # Address of a Dask scheduler ("tcp://host:8786"); empty: run on this machine.
+    cluster: str = ""
+
+
+@dataclass(frozen=True)
 class BuildConfig:
     corpus: CorpusSettings = CorpusSettings()
     target: TargetSettings = TargetSettings()
@@ -120,6 +131,7 @@ class BuildConfig:
     gate: GateSettings = GateSettings()
     store: StoreSettings = StoreSettings()
     schedule: ScheduleSettings = ScheduleSettings()
+    compute: ComputeSettings = ComputeSettings()
 
 
 def _coerce(value: Any, annotation: Any, where: str, base: Path) -> Any:

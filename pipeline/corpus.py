@@ -450,6 +450,15 @@ def _subset(keys: list[bytes], counts: np.ndarray, mask: np.ndarray) -> KeySet:
     return KeySet([keys[i] for i in picked], counts[picked])
 
 
+def sample_keys(keys: KeySet, size: int, seed: int) -> KeySet:
+    """At most `size` of the keys, drawn uniformly without replacement from a seeded generator and
+    kept in their order; all of them when there are no more than `size`."""
+    if len(keys.keys) <= size:
+        return keys
+    pick = np.sort(np.random.default_rng(seed).choice(len(keys.keys), size, replace=False))
+    return KeySet([keys.keys[i] for i in pick], keys.counts[pick])
+
+
 def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSettings) -> Corpus:
     check_sources(members_path, non_members_path)
     members_raw = read_source(members_path, settings, want_counts=False)

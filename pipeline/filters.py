@@ -12,12 +12,13 @@ All regions share one hash seed: a key falls in exactly one region, so their has
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-from typing import Literal, Sequence
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, replace
+from typing import Literal
 
 import numpy as np
 
-from pipeline.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys
+from pipeline.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
 
 FilterMode = Literal["bloom", "yes", "no"]
 FILTER_MODES = ("bloom", "yes", "no")
@@ -54,29 +55,27 @@ def _no_bits() -> np.ndarray:
     return np.zeros(0, dtype=np.uint64)
 
 
-def build_region_filter(hashes: KeyHashes, fpr: float, hash_seed: int) -> RegionFilter:
-    """The filter for one region holding the members with these hashes, at budget fpr."""
-    members = len(hashes)
+def empty_region_filter(members: int, fpr: float, hash_seed: int) -> RegionFilter:
+    """The filter for one region of `members` members at budget fpr, its bits all clear."""
     if members == 0:
         return RegionFilter("no", 0, 0, 0, fpr, _no_bits())
     if fpr >= 1.0:
         return RegionFilter("yes", 0, 0, members, fpr, _no_bits())
     bits = bloom_bits(members, fpr)
     bloom = BloomFilter.empty(bits, bloom_hashes(bits, members), hash_seed)
-    bloom.insert_hashes(hashes)
     return RegionFilter("bloom", bits, bloom.hashes, members, fpr, bloom.words)
 
 
-def _check_inputs(member_keys: Sequence[bytes], regions: np.ndarray, fprs: np.ndarray) -> None:
+def _check_inputs(regions: np.ndarray, fprs: np.ndarray, keys: int | None = None) -> None:
+    """Budgets in [0, 1]; integer regions in range, one per key when the number of keys is given."""
     if fprs.ndim != 1 or len(fprs) == 0:
         raise ValueError(f"fprs must be a non-empty 1-d array of per-region rates, got shape {fprs.shape}")
     if np.isnan(fprs).any() or (fprs < 0).any() or (fprs > 1).any():
         raise ValueError(f"every per-region false-positive rate must lie in [0, 1], got {fprs.tolist()}")
-    if regions.shape != (len(member_keys),):
-        raise ValueError(
-            f"member_regions must hold one region per member key: {len(member_keys)} keys, "
-            f"regions of shape {regions.shape}"
-        )
+    if regions.ndim != 1:
+        raise ValueError(f"member_regions must be a 1-d array of region numbers, got shape {regions.shape}")
+    if keys is not None and len(regions) != keys:
+        raise ValueError(f"member_regions must hold one region per member key: {keys} keys, regions of shape {regions.shape}")
     if not np.issubdtype(regions.dtype, np.integer):
         raise ValueError(f"member_regions must be integers, got dtype {regions.dtype}")
     if len(regions) and (regions.min() < 0 or regions.max() >= len(fprs)):
@@ -86,17 +85,15 @@ def _check_inputs(member_keys: Sequence[bytes], regions: np.ndarray, fprs: np.nd
         )
 
 
-def build_filters(
-    member_keys: Sequence[bytes], member_regions: np.ndarray, fprs: np.ndarray, hash_seed: int
-) -> list[RegionFilter]:
-    """One RegionFilter per region (len(fprs) of them), each holding exactly its region's members.
+def empty_filters(member_regions: np.ndarray, fprs: np.ndarray, hash_seed: int) -> list[RegionFilter]:
+    """One RegionFilter per region (len(fprs) of them), sized for its members, its bits all clear.
 
-    member_regions[j] is the region of member_keys[j] as the loader computes it. Each key is hashed
-    once; a region with members and budget 0 is refused, since it could only answer no to them.
+    member_regions[j] is the region of member j as the loader computes it. A region with members
+    and budget 0 is refused, since it could only answer no to them.
     """
     regions = np.asarray(member_regions)
     budgets = np.asarray(fprs, dtype=np.float64)
-    _check_inputs(member_keys, regions, budgets)
+    _check_inputs(regions, budgets)
     counts = np.bincount(regions.astype(np.int64), minlength=len(budgets))
     starved = np.flatnonzero((counts > 0) & (budgets == 0))
     if len(starved):
@@ -104,8 +101,45 @@ def build_filters(
             f"regions {starved.tolist()} hold members but have a false-positive budget of 0; "
             "a region with members needs a budget above 0 (fix the region plan)"
         )
+    return [empty_region_filter(int(count), float(budget), hash_seed) for count, budget in zip(counts, budgets)]
+
+
+def chunk_words(
+    filters: Sequence[RegionFilter], member_keys: Sequence[bytes], member_regions: np.ndarray, hash_seed: int
+) -> list[np.ndarray]:
+    """The bits of one chunk of members: per region, fresh words of that region's size with this
+    chunk's members of the region inserted (empty words for modes "yes" and "no").
+
+    Setting a bit is an OR, so the bits of all members are the OR of the chunks' words, in any order
+    and however the members were cut into chunks (`merge_words`).
+    """
+    regions = np.asarray(member_regions)
+    _check_inputs(regions, np.array([f.fpr_budget for f in filters]), len(member_keys))
     hashes = hash_keys(member_keys, hash_seed)
-    return [
-        build_region_filter(hashes.select(regions == i), float(budget), hash_seed)
-        for i, budget in enumerate(budgets)
-    ]
+    words = []
+    for index, region in enumerate(filters):
+        if region.mode != "bloom":
+            words.append(_no_bits())
+            continue
+        bloom = BloomFilter.empty(region.bits, region.hashes, hash_seed)
+        bloom.insert_hashes(hashes.select(regions == index))
+        words.append(bloom.words)
+    return words
+
+
+def merge_words(filters: Sequence[RegionFilter], chunks: Iterable[Sequence[np.ndarray]]) -> list[RegionFilter]:
+    """The filters with every chunk's words ORed into their bits (`chunk_words`)."""
+    merged = [region.words.copy() for region in filters]
+    for words in chunks:
+        for into, part in zip(merged, words, strict=True):
+            into |= part
+    return [replace(region, words=bits) for region, bits in zip(filters, merged)]
+
+
+def build_filters(
+    member_keys: Sequence[bytes], member_regions: np.ndarray, fprs: np.ndarray, hash_seed: int
+) -> list[RegionFilter]:
+    """One RegionFilter per region (len(fprs) of them), each holding exactly its region's members:
+    `empty_filters` and the words of one chunk holding every member."""
+    filters = empty_filters(member_regions, fprs, hash_seed)
+    return merge_words(filters, [chunk_words(filters, member_keys, member_regions, hash_seed)])

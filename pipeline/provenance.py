@@ -44,9 +44,11 @@ def corpus_digest(corpus: Corpus) -> str:
 
 
 def config_digest(config: BuildConfig) -> str:
-    """xxh3-128 of the settings that shape the artifact; file paths are left out, so moving a
-    corpus or a store does not change the artifact's bytes."""
+    """xxh3-128 of the settings that shape the artifact. File paths are left out, so moving a
+    corpus or a store does not change the artifact's bytes, and so is [compute]: the chunk size and
+    the machines a build runs on never change its result."""
     settings = dataclasses.asdict(config)
+    settings.pop("compute")
     for section, key in (("corpus", "members"), ("corpus", "non_members"), ("store", "path")):
         settings[section].pop(key)
     text = json.dumps(settings, sort_keys=True, default=lambda v: str(v) if isinstance(v, Path) else list(v))

@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 from scipy import stats
@@ -26,7 +25,7 @@ from scipy import stats
 from pipeline.config import GateSettings
 from pipeline.corpus import KeySet
 from pipeline.errors import BadInput
-from pipeline.loader import MembershipFilter, open_filter
+from pipeline.loader import MembershipFilter
 
 
 @dataclass(frozen=True)
@@ -161,17 +160,15 @@ class Verification:
     heldout: Measurement
 
 
+def verification(member_answers: np.ndarray, heldout_answers: np.ndarray, heldout: KeySet, weighted: bool, confidence: float) -> Verification:
+    """The verdict on a filter from its answers to every member and to every held-out key."""
+    false_negatives = int(len(member_answers) - np.count_nonzero(member_answers))
+    return Verification(false_negatives, len(member_answers), measure_fpr(heldout_answers, heldout, weighted, confidence))
+
+
 def check_filter(loaded: MembershipFilter, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Verification:
     """Query every member and every held-out key through an opened filter."""
-    member_answers = loaded.contains_many(members)
-    false_negatives = int(len(members) - member_answers.sum())
-    measurement = measure_fpr(loaded.contains_many(heldout.keys), heldout, weighted, confidence)
-    return Verification(false_negatives, len(members), measurement)
-
-
-def verify_artifact(path: Path, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Verification:
-    """Open `path` with the loader a service uses; query every member and every held-out key."""
-    return check_filter(open_filter(path), members, heldout, weighted, confidence)
+    return verification(loaded.contains_many(members), loaded.contains_many(heldout.keys), heldout, weighted, confidence)
 
 
 @dataclass(frozen=True)

@@ -1,7 +1,9 @@
 """The build flow's operations: progress events, retries of the corpus read, failures that publish
 nothing, and a held-out part too small for the target stopping the build before training."""
 
+import dataclasses
 import errno
+import math
 
 import pytest
 
@@ -9,6 +11,8 @@ import flows.build as build
 from pipeline import cli, publish
 from pipeline import corpus as corpus_stage
 from pipeline import verify
+from pipeline.artifact import read_artifact
+from pipeline.config import ComputeSettings
 from pipeline.errors import BadInput
 from small_build import SMALL_MODEL, small_config, write_corpus
 
@@ -18,13 +22,30 @@ def corpus_files(tmp_path_factory):
     return write_corpus(tmp_path_factory.mktemp("flow"))
 
 
+# Small chunks, so that every per-chunk stage runs several tasks
+CHUNK_KEYS = 1_000
+
+
 @pytest.fixture(scope="module")
 def published(corpus_files, tmp_path_factory):
-    """One build into a fresh store, with every progress event it sent."""
+    """One build into a fresh store, in chunks of CHUNK_KEYS keys, with every progress event it sent."""
     store = tmp_path_factory.mktemp("published") / "store"
     events = []
-    outcome = build.build_flow(small_config(*corpus_files, store), progress=events.append)
+    config = dataclasses.replace(small_config(*corpus_files, store), compute=ComputeSettings(chunk_keys=CHUNK_KEYS))
+    outcome = build.build_flow(config, progress=events.append)
     return outcome, events
+
+
+def test_the_chunk_size_does_not_change_the_artifact(corpus_files, tmp_path, monkeypatch):
+    """Chunks are computed on their own and joined in order (filter bits by OR), and [compute] is
+    left out of the config digest, so a build in one chunk writes the same bytes as one in many."""
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", "1700000000")
+    chunked = build.build_flow(dataclasses.replace(small_config(*corpus_files, tmp_path / "a"), compute=ComputeSettings(chunk_keys=CHUNK_KEYS)))
+    whole = build.build_flow(small_config(*corpus_files, tmp_path / "b"))
+    first, second = (read_artifact(o.folder / publish.ARTIFACT_NAME) for o in (chunked, whole))
+    assert first[0] == second[0] and first[1].keys() == second[1].keys()
+    assert all(first[1][name].tobytes() == second[1][name].tobytes() for name in first[1])
+    assert (chunked.folder / publish.ARTIFACT_NAME).read_bytes() == (whole.folder / publish.ARTIFACT_NAME).read_bytes()
 
 
 @pytest.fixture
@@ -53,7 +74,10 @@ def test_long_stages_report_their_advance(published):
     assert features[-1].done == features[-1].total == corpus["members"] + corpus["split"]["train"] + corpus["split"]["validation"]
     assert [e.done for e in features] == sorted(e.done for e in features)
     assert steps["filters"][-1].done == steps["filters"][-1].total == corpus["members"]
-    assert len(steps["filters"]) == len(outcome.report["regions"])
+    # one step a chunk: the members, training and validation keys are chunked part by part
+    assert len(steps["filters"]) == math.ceil(corpus["members"] / CHUNK_KEYS)
+    parts = (corpus["members"], corpus["split"]["train"], corpus["split"]["validation"])
+    assert len(features) == sum(math.ceil(keys / CHUNK_KEYS) for keys in parts)
     # one step per priced checkpoint: the model report lists them all
     assert [e.done for e in steps["model"]] == list(range(1, len(outcome.report["model"]["candidates"]) + 1))
 
@@ -122,7 +146,7 @@ def test_a_failing_stage_publishes_nothing_and_says_which_stage(published, corpu
     def broken(*args):
         raise RuntimeError("the disk said no")
 
-    monkeypatch.setattr(verify, "verify_artifact", broken)
+    monkeypatch.setattr(verify, "verification", broken)
     with pytest.raises(build.BuildFailed) as failed:
         build.build_flow(small_config(*corpus_files, store))
     assert failed.value.stage == "verify" and isinstance(failed.value.error, RuntimeError)

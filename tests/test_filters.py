@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from pipeline.bloom import BloomFilter, bloom_bits, bloom_fpr, bloom_hashes
-from pipeline.filters import build_filters
+from pipeline.filters import build_filters, chunk_words, empty_filters, merge_words
 
 SEED = 404
 # Binomial tolerance for measured rates: 4 standard deviations (common practice).
@@ -97,3 +97,22 @@ def test_yes_mode_has_no_bloom():
 def test_bad_inputs_are_refused(keys, regions, fprs, message):
     with pytest.raises(ValueError, match=message):
         build_filters(keys, np.array(regions), np.array(fprs, dtype=np.float64), SEED)
+
+
+def test_chunked_insertion_equals_one_pass():
+    """Bits set chunk by chunk and ORed together, in any order, equal the bits of one insertion:
+    setting a bit is idempotent and commutative (common practice: Bloom filters of the same size and
+    hashes merge by OR into the filter of the union)."""
+    keys = random_keys(30_000, 9, b"m")
+    regions = np.random.default_rng(3).integers(0, 4, len(keys))
+    fprs = np.array([0.01, 1.0, 0.2, 0.05])
+    whole = build_filters(keys, regions, fprs, SEED)
+    filters = empty_filters(regions, fprs, SEED)
+    cuts = [0, 1, 7_000, 7_001, 22_000, len(keys)]
+    parts = [chunk_words(filters, keys[a:b], regions[a:b], SEED) for a, b in zip(cuts, cuts[1:])]
+    merged = merge_words(filters, reversed(parts))
+    assert [f.mode for f in merged] == ["bloom", "yes", "bloom", "bloom"]
+    for one, other in zip(whole, merged):
+        assert (one.mode, one.bits, one.hashes, one.members) == (other.mode, other.bits, other.hashes, other.members)
+        assert np.array_equal(one.words, other.words)
+    assert not filters[0].words.any(), "merging must not write into the empty filters"
