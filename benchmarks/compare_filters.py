@@ -70,12 +70,21 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from flows.build import choose_regions, extract_features, fill_filters, read_corpus, train_model, verify_package, write_package
+from flows.build import (
+    choose_regions,
+    extract_features,
+    fill_filters,
+    read_corpus,
+    run_in_process,
+    train_model,
+    verify_package,
+    write_package,
+)
 from pipeline import verify
 from pipeline.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
 from pipeline.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys, word_count
 from pipeline.config import BuildConfig, load_config, with_overrides
-from pipeline.corpus import Corpus
+from pipeline.corpus import Corpus, KeySet, sample_keys
 from pipeline.demo import write_demo_corpus
 from pipeline.errors import BadInput
 from pipeline.features import default_feature_spec, featurize
@@ -126,13 +135,15 @@ def write_corpus(name: str, folder: Path, demo_size: tuple[int, int]) -> tuple[P
 
 @dataclass(frozen=True)
 class Prepared:
-    """A corpus read and split, with what every target shares: the feature matrices of the build
-    flow's features stage, the held-out keys' features and their hashes (one seed for all filters)."""
+    """A corpus read and split, with what every target shares: the training sample and the feature
+    matrices of the build flow's features stage, the held-out keys' features and their hashes (one
+    seed for all filters)."""
 
     name: str
     corpus: Corpus
     config: BuildConfig
     spec: dict
+    train: KeySet
     features: dict
     heldout_features: np.ndarray
     heldout_hashes: KeyHashes
@@ -144,14 +155,15 @@ def prepare(name: str, folder: Path, demo_size: tuple[int, int], model: dict) ->
     corpus = read_corpus.fn(config)
     spec = default_feature_spec()
     started = time.perf_counter()
-    features = extract_features.fn(corpus, spec, quiet)
+    train = sample_keys(corpus.train, config.model.train_nonmembers, config.model.seed)
+    features = extract_features(run_in_process, corpus, train, spec, config)
     heldout_features = featurize(corpus.heldout.keys, spec)
     heldout_hashes = hash_keys(corpus.heldout.keys, config.filters.hash_seed)
     log(
         f"{name}: {len(corpus.members):,} members, {len(corpus.train.keys):,} / {len(corpus.validation.keys):,} / "
         f"{len(corpus.heldout.keys):,} train / validation / held-out non-members; features in {time.perf_counter() - started:.0f} s"
     )
-    return Prepared(name, corpus, config, spec, features, heldout_features, heldout_hashes)
+    return Prepared(name, corpus, config, spec, train, features, heldout_features, heldout_hashes)
 
 
 # Filters -----------------------------------------------------------------------------------------
@@ -220,7 +232,7 @@ class Built:
 def build_artifact(prepared: Prepared, path: Path, forest, plan, member_scores, heldout_scores) -> Built:
     """The filters of a plan (anything with `boundaries` and `fprs`), packaged with the forest."""
     seed = prepared.config.filters.hash_seed
-    filters = fill_filters.fn(prepared.corpus, member_scores, plan, seed, quiet)
+    filters = fill_filters(run_in_process, prepared.corpus, member_scores, plan, prepared.config)
     write_package.fn(path, prepared.spec, forest, plan, filters, seed, {"benchmark": path.stem}, None)
     return Built(path, filters, heldout_answers(heldout_scores, prepared, plan.boundaries, filters))
 
@@ -228,7 +240,7 @@ def build_artifact(prepared: Prepared, path: Path, forest, plan, member_scores, 
 def through_loader(prepared: Prepared, built: Built, label: str) -> Measured:
     """Verify an artifact as the verify stage does (every member, every held-out key through the
     loader) and check that the answers computed from scores agree with the loader's."""
-    checked = verify_package.fn(built.path, prepared.corpus, prepared.config)
+    checked = verify_package(run_in_process, built.path, prepared.corpus, prepared.config)
     if checked.false_negatives:
         raise AssertionError(f"{built.path}: {checked.false_negatives} members answered no (invariant 1 broken)")
     result = measured(label, built.path.stat().st_size, built.answers, prepared)
@@ -314,8 +326,8 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
         return TargetResult(prepared.name, target, refused=refusal(prepared, target))
     aim = verify.aim_fpr(target, sample, config.gate.confidence, config.gate.aim_sigmas)
     started = time.perf_counter()
-    choice = train_model.fn(corpus, prepared.features, aim, config, quiet)
-    plan, scores = choose_regions.fn(corpus, prepared.features, choice.forest, aim, config)
+    choice = train_model.fn(corpus, prepared.train, prepared.features, aim, config, quiet)
+    plan, scores = choose_regions(run_in_process, corpus, prepared.features, choice.forest, aim, config)
     heldout_scores = score_batch(choice.forest, prepared.heldout_features)
     build = functools.partial(
         build_artifact, prepared, forest=choice.forest, member_scores=scores.member_scores, heldout_scores=heldout_scores

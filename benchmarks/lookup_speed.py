@@ -1,18 +1,23 @@
 """Lookup speed of the loader on the demo artifact, against a plain Bloom filter.
 
 Run: .venv/bin/python benchmarks/lookup_speed.py [--artifact PATH] [--members N] [--non-members N]
-                                                 [--keys N] [--budgets 120,240,480 | none]
+                                                 [--keys N] [--budgets 120,240,480 | none] [--key-type str]
 
 Builds the Emberfall demo corpus (pipeline.demo, seeded) and, through the stage functions (not the
 CLI), one artifact per query-cost budget (ModelSettings.max_nodes_per_key), unless --artifact names
 the one to measure. Then, in one run, it prints:
 
-1. batch `contains_many` of --keys keys (held-out non-members and members, shuffled) in keys/s;
+1. batch `contains_many` of --keys keys (held-out non-members and members, shuffled, as str) in keys/s;
 2. single-key `contains`, p50 and p99 latency;
 3. the same keys through a plain Bloom filter (`pipeline.bloom`) holding the same members at the
    same target false-positive rate: the baseline every figure is divided by;
-4. the batch profile: features, trees, hashing and probes, each on its own;
-5. the curve of artifact bytes against batch lookup speed over the budgets.
+4. the batch profile: packing, features, trees, hashing and probes, each on its own;
+5. the curve of artifact bytes against batch lookup speed over the budgets;
+6. the cost of opening the artifact in a fresh process, with numba's cache cold and warm.
+
+Figures 1, 2, 4 and 5 are given for the plain numpy path and, when numba is installed, for the
+compiled path (`pipeline.compiled`), side by side in the same run; both give the same answers,
+which the run checks.
 
 Every time is given as CPU seconds of this process (time.process_time) and as wall seconds: on a
 shared machine the CPU figure is the steadier one. Each batch figure is the best of --repeat runs.
@@ -21,7 +26,11 @@ shared machine the CPU figure is the steadier one. Each batch figure is the best
 from __future__ import annotations
 
 import argparse
+import contextlib
 import dataclasses
+import os
+import subprocess
+import sys
 import tempfile
 import time
 from collections.abc import Callable
@@ -29,13 +38,14 @@ from pathlib import Path
 
 import numpy as np
 
+from pipeline import compiled
 from pipeline.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_slices
 from pipeline.config import load_config
 from pipeline.corpus import load_corpus
 from pipeline.demo import write_demo_corpus
 from pipeline.features import default_feature_spec, featurize, featurize_columns
 from pipeline.filters import build_filters
-from pipeline.loader import MembershipFilter, open_filter, pack_batch
+from pipeline.loader import MembershipFilter, PackedKeys, open_filter, pack_batch
 from pipeline.model import fit_model
 from pipeline.package import package_artifact
 from pipeline.regions import plan_regions, region_of
@@ -116,29 +126,58 @@ def plain_bloom(members: list[bytes], fpr: float, seed: int) -> BloomFilter:
     return bloom
 
 
-def profile(loaded: MembershipFilter, keys: list[bytes], repeat: int) -> dict[str, Timing]:
-    """Each part of `contains_many` on its own, over the whole batch."""
+def profile(loaded: MembershipFilter, keys: list, repeat: int) -> dict[str, Timing]:
+    """Each part of `contains_many` on its own, over the whole batch, on the path now enabled."""
     packed = pack_batch(keys)
     spec = loaded.feature_spec
     columns = featurize_columns(packed.data, packed.offsets, spec)
     scores = score_columns(loaded.forest, columns)
-    regions = region_of(scores, np.array(loaded.boundaries, dtype=np.int64))
+    boundaries = np.array(loaded.boundaries, dtype=np.int64)
+    regions = region_of(scores, boundaries)
     in_bloom = np.flatnonzero(np.array([r.mode == "bloom" for r in loaded.regions])[regions])
     starts, stops = packed.offsets[in_bloom], packed.offsets[in_bloom + 1]
+    hashes = hash_slices(packed.buffer, starts, stops, loaded.hash_seed)
 
     def probes() -> None:
-        hashes = hash_slices(packed.buffer, starts, stops, loaded.hash_seed)
         for index, region in enumerate(loaded.regions):
             if region.mode == "bloom":
                 region.bloom.query_hashes(hashes.select(regions[in_bloom] == index))
 
-    return {
+    parts = {
         "pack keys": best_of(repeat, lambda: pack_batch(keys)),
         "features": best_of(repeat, lambda: featurize_columns(packed.data, packed.offsets, spec)),
         "trees": best_of(repeat, lambda: score_columns(loaded.forest, columns)),
-        "regions": best_of(repeat, lambda: region_of(scores, np.array(loaded.boundaries, dtype=np.int64))),
-        f"hashing + probes ({len(in_bloom) / len(keys):.0%} of keys in Bloom regions)": best_of(repeat, probes),
     }
+    if compiled.ENABLED:
+        parts["features + trees, fused per key (what contains_many runs)"] = best_of(
+            repeat, lambda: loaded._scores(packed.data, packed.offsets))
+    return parts | {
+        "regions": best_of(repeat, lambda: region_of(scores, boundaries)),
+        f"hashing ({len(in_bloom) / len(keys):.0%} of keys in Bloom regions)": best_of(
+            repeat, lambda: hash_slices(packed.buffer, starts, stops, loaded.hash_seed)),
+        "probes": best_of(repeat, probes),
+    }
+
+
+@contextlib.contextmanager
+def numpy_only(on: bool):
+    """Run the block on the plain numpy path when `on` (else on whatever path is enabled)."""
+    enabled = compiled.ENABLED
+    compiled.ENABLED = enabled and not on
+    try:
+        yield
+    finally:
+        compiled.ENABLED = enabled
+
+
+def open_seconds(path: Path, cache: Path | None) -> float:
+    """Wall seconds of `open_filter` in a fresh process (imports not counted), numba's cache in
+    `cache` (an empty folder: a cold compile) or where numba keeps it (None)."""
+    env = dict(os.environ, **({"NUMBA_CACHE_DIR": str(cache)} if cache else {}))
+    code = ("import sys, time; from pipeline.loader import open_filter; t = time.perf_counter(); "
+            "open_filter(sys.argv[1]); print(time.perf_counter() - t)")
+    done = subprocess.run([sys.executable, "-c", code, str(path)], env=env, capture_output=True, text=True, check=True)
+    return float(done.stdout)
 
 
 def main() -> None:
@@ -151,6 +190,7 @@ def main() -> None:
     parser.add_argument("--curve-keys", type=int, default=200_000, help="keys per point of the bytes-speed curve")
     parser.add_argument("--budgets", default="120,240,480", help="max_nodes_per_key values for the curve, or 'none'")
     parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--key-type", choices=("str", "bytes"), default="str", help="how the batch keys are passed")
     parser.add_argument("--work", type=Path, help="folder for the corpus and artifacts (default: a temporary one)")
     args = parser.parse_args()
 
@@ -175,45 +215,66 @@ def main() -> None:
     if path is None:
         parser.error("give --artifact or at least one budget to build")
     loaded = open_filter(path)
+    queries = [k.decode("utf-8") for k in keys] if args.key_type == "str" else keys
+    paths = ["numpy", "compiled"] if compiled.ENABLED else ["numpy"]
 
     bloom = plain_bloom(corpus.members, target, config.filters.hash_seed)
     base = best_of(args.repeat, lambda: bloom.query(keys))
-    batch = best_of(args.repeat, lambda: loaded.contains_many(keys))
     sample = keys[:SINGLE_KEYS]
-    p50, p99 = single_key_latency(loaded, sample)
     b50, b99 = single_key_latency(bloom, sample)
+    batch, single, parts, answers = {}, {}, {}, {}
+    for name in paths:
+        with numpy_only(name == "numpy"):
+            answers[name] = loaded.contains_many(queries)
+            batch[name] = best_of(args.repeat, lambda: loaded.contains_many(queries))
+            single[name] = single_key_latency(loaded, queries[:SINGLE_KEYS])
+            parts[name] = profile(loaded, queries, args.repeat)
+    if not all(np.array_equal(answers[name], answers["numpy"]) for name in paths):
+        raise SystemExit("the numpy and compiled paths answered differently: a bug, please report it")
     size = path.stat().st_size
 
     forest = loaded.forest
     print(f"\nartifact {path}: {size:,} bytes, {forest.trees} trees of up to {forest.max_splits + 1} leaves, "
-          f"{len(loaded.regions)} regions")
+          f"{len(loaded.regions)} regions; numba {'on' if compiled.ENABLED else 'not installed or disabled'}")
     print(f"plain Bloom filter at {target:g}: {bloom.nbytes:,} bytes, {bloom.hashes} probes; "
           f"artifact / Bloom bytes = {size / bloom.nbytes:.3f}")
-    print(f"\nbatch of {len(keys):,} keys (best of {args.repeat}):")
-    print(f"  contains_many  {len(keys) / batch.cpu:12,.0f} keys/s CPU ({len(keys) / batch.wall:12,.0f} wall)   "
-          f"{batch.per_key_us(len(keys))}")
-    print(f"  plain Bloom    {len(keys) / base.cpu:12,.0f} keys/s CPU ({len(keys) / base.wall:12,.0f} wall)   "
-          f"{base.per_key_us(len(keys))}")
-    print(f"  ratio artifact / Bloom speed: {base.cpu / batch.cpu:.3f} (CPU), {base.wall / batch.wall:.3f} (wall)")
+    print(f"\nbatch of {len(keys):,} keys as {args.key_type} (best of {args.repeat}; the plain Bloom filter takes bytes):")
+    for name, timing in [*((f"contains_many, {p}", batch[p]) for p in paths), ("plain Bloom", base)]:
+        print(f"  {name:24s} {len(keys) / timing.cpu:12,.0f} keys/s CPU ({len(keys) / timing.wall:12,.0f} wall)   "
+              f"{timing.per_key_us(len(keys))}   / Bloom speed {base.cpu / timing.cpu:.3f} CPU")
     print(f"\nsingle key, {len(sample):,} calls (wall clock per call):")
-    print(f"  contains       p50 {p50:7.1f} us   p99 {p99:7.1f} us")
-    print(f"  plain Bloom    p50 {b50:7.1f} us   p99 {b99:7.1f} us   (ratio p50 {p50 / b50:.1f})")
-    print(f"\nprofile of contains_many's parts over the same {len(keys):,} keys (best of {args.repeat}):")
-    for part, timing in profile(loaded, keys, args.repeat).items():
-        print(f"  {part:58s} {timing.per_key_us(len(keys))}")
+    for name in paths:
+        p50, p99 = single[name]
+        print(f"  contains, {name:14s} p50 {p50:7.1f} us   p99 {p99:7.1f} us   (ratio p50 to Bloom {p50 / b50:.1f})")
+    print(f"  {'plain Bloom':24s} p50 {b50:7.1f} us   p99 {b99:7.1f} us")
+    print(f"\nprofile of contains_many's parts over the same {len(keys):,} keys (best of {args.repeat}), us/key CPU:")
+    print(f"  {'part':62s}" + "".join(f"{p:>10s}" for p in paths))
+    for part in parts[paths[-1]]:
+        cells = "".join(f"{parts[p][part].cpu / len(keys) * 1e6:10.3f}" if part in parts[p] else f"{'-':>10s}" for p in paths)
+        print(f"  {part:62s}{cells}")
 
     if built:
         print(f"\nbytes against batch speed ({args.curve_keys:,} keys each, best of {args.repeat}; Bloom = "
               f"{bloom.nbytes:,} bytes at {len(keys) / base.cpu:,.0f} keys/s CPU):")
-        print(f"  {'max_nodes_per_key':>17s} {'trees':>5s} {'bytes':>9s} {'/ Bloom':>8s} {'keys/s CPU':>12s} {'/ Bloom':>8s}")
-        few = keys[: args.curve_keys]
+        print(f"  {'max_nodes_per_key':>17s} {'trees':>5s} {'bytes':>9s} {'/ Bloom':>8s}"
+              + "".join(f" {'keys/s ' + p:>16s} {'/ Bloom':>8s}" for p in paths))
+        few = queries[: args.curve_keys]
         for row in built:
             point = open_filter(row["path"])
-            timing = best_of(args.repeat, lambda: point.contains_many(few))
-            rate = len(few) / timing.cpu
             point_bytes = row["path"].stat().st_size
-            print(f"  {row['budget']:>17d} {row['trees']:>5d} {point_bytes:>9,d} {point_bytes / bloom.nbytes:>8.3f} "
-                  f"{rate:>12,.0f} {rate / (len(keys) / base.cpu):>8.3f}")
+            cells = ""
+            for name in paths:
+                with numpy_only(name == "numpy"):
+                    rate = len(few) / best_of(args.repeat, lambda: point.contains_many(few)).cpu
+                cells += f" {rate:>16,.0f} {rate / (len(keys) / base.cpu):>8.3f}"
+            print(f"  {row['budget']:>17d} {row['trees']:>5d} {point_bytes:>9,d} {point_bytes / bloom.nbytes:>8.3f}{cells}")
+
+    if compiled.ENABLED:
+        with tempfile.TemporaryDirectory() as cold:
+            first = open_seconds(path, Path(cold))
+            again = open_seconds(path, Path(cold))
+        print(f"\nopen_filter in a fresh process (compiles the kernels): {first:.2f} s with numba's cache empty, "
+              f"{again:.2f} s from the cache it left")
 
 
 if __name__ == "__main__":

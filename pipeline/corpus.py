@@ -331,13 +331,24 @@ def _table_problem(path: Path, kind: str, error: Exception) -> str:
     return f"{path}: cannot read as {kind}: {said}; check that the file is {kind}"
 
 
-def _read_frame(path: Path, kind: str) -> pl.DataFrame:
+def _scan(path: Path, kind: str) -> pl.LazyFrame:
+    if kind == "csv":
+        return pl.scan_csv(path, infer_schema=False)  # every column as text; counts parsed below
+    if kind == "parquet":
+        return pl.scan_parquet(path)
+    return pl.scan_ndjson(path)
+
+
+def _read_frame(path: Path, kind: str, want_counts: bool) -> pl.DataFrame:
+    """The `key` column (and `count`, when wanted and present) of a table, read lazily: polars
+    reads only those columns of the file (of a Parquet file, only their column chunks)."""
     try:
-        if kind == "csv":
-            return pl.read_csv(path, infer_schema_length=0)  # every column as text; counts parsed below
-        if kind == "parquet":
-            return pl.read_parquet(path)
-        return pl.read_ndjson(path)
+        lazy = _scan(path, kind)
+        columns = lazy.collect_schema().names()
+        if "key" not in columns:
+            raise BadInput(f"{path}: no `key` column (columns: {', '.join(columns) or 'none'}); name the key column `key`")
+        wanted = ["key", "count"] if want_counts and "count" in columns else ["key"]
+        return lazy.select(wanted).collect()
     except (pl.exceptions.PolarsError, ValueError) as exc:
         raise BadInput(_table_problem(path, kind, exc)) from None
 
@@ -377,9 +388,7 @@ def _read_table(path: Path, kind: str, encoding: str, want_counts: bool) -> tupl
             f"{path}: key_encoding \"bytes\" reads one-key-a-line files and Parquet tables; a {kind} file holds text: "
             f"use key_encoding = \"utf-8\", or convert the file"
         )
-    frame = _read_frame(path, kind)
-    if "key" not in frame.columns:
-        raise BadInput(f"{path}: no `key` column (columns: {', '.join(frame.columns) or 'none'}); name the key column `key`")
+    frame = _read_frame(path, kind, want_counts)
     key_column = frame["key"]
     if key_column.dtype not in (pl.String, pl.Binary):
         raise BadInput(f"{path}: column `key` holds {key_column.dtype}, expected text; write keys as strings")
@@ -395,7 +404,7 @@ def _read_table(path: Path, kind: str, encoding: str, want_counts: bool) -> tupl
                 f"{path}: {_place(path, kind, bad)} holds a key that is not valid UTF-8; fix the key, or read keys "
                 f"as raw bytes with key_encoding = \"bytes\" (--key-encoding bytes)"
             )
-    counts = _read_counts(path, kind, frame["count"]) if want_counts and "count" in frame.columns else None
+    counts = _read_counts(path, kind, frame["count"]) if "count" in frame.columns else None
     return keys, counts
 
 
