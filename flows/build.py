@@ -107,6 +107,11 @@ def chunks_of(items: Sequence, size: int) -> list[Sequence]:
 ChunkMap = Callable[..., list]
 
 
+def run_in_process(chunk_task, pieces: list, *shared) -> list:
+    """A ChunkMap without Prefect: each piece through the task's own function, in turn (scripts)."""
+    return [chunk_task.fn(piece, *shared) for piece in pieces]
+
+
 def map_parts(run_chunks: ChunkMap, chunk_task, parts: dict[str, Sequence], chunk_size: int, *shared) -> dict[str, np.ndarray]:
     """Run `chunk_task(piece, *shared)` on every chunk of every part; each part's results joined in order."""
     pieces = {name: chunks_of(items, chunk_size) for name, items in parts.items()}
