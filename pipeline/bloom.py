@@ -17,6 +17,8 @@ from typing import Sequence
 import numpy as np
 import xxhash
 
+from pipeline import compiled
+
 LN2 = math.log(2.0)
 
 # A Bloom filter sized optimally needs 1/ln 2 = 1.4427 times the information-theoretic lower bound
@@ -211,6 +213,10 @@ class BloomFilter:
 
     def query_hashes(self, key_hashes: KeyHashes) -> np.ndarray:
         """`query` for keys already hashed with this filter's seed."""
+        if compiled.ENABLED:  # the same positions, one key at a time, stopping at its first clear bit
+            answers = np.empty(len(key_hashes), dtype=bool)
+            compiled.bloom_query(key_hashes.low, key_hashes.high, self.bits, self.hashes, self.words, answers)
+            return answers
         positions = probe_positions(key_hashes, self.bits, self.hashes)
         words = self.words[positions >> np.uint64(6)]
         return np.logical_and.reduce((words & _bit_masks(positions)) != 0, axis=0)

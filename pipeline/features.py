@@ -27,7 +27,9 @@ An empty key has every feature 0.
 
 Two implementations compute the same values: `featurize_packed` (and `featurize` on a list) works
 on a whole batch with numpy, one pass per quantity over all bytes of a chunk of keys, with no Python
-per key; `featurize_one` is plain Python for a single key, where array set-up would dominate.
+per key; `featurize_one` is plain Python for a single key, where array set-up would dominate. When
+numba is installed, the batch functions run `pipeline.compiled.featurize_into` instead: one pass per
+key, the same values bit for bit.
 """
 
 from __future__ import annotations
@@ -35,9 +37,12 @@ from __future__ import annotations
 from array import array
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import cached_property
 from itertools import groupby
 
 import numpy as np
+
+from pipeline import compiled
 
 FEATURES_VERSION = 1
 
@@ -123,6 +128,18 @@ class FeatureLayout:
             "trigram_buckets": self.trigram_buckets,
             "affix_buckets": self.affix_buckets,
         }
+
+    @cached_property
+    def kernel_tables(self) -> tuple[np.ndarray, ...]:
+        """The arguments `pipeline.compiled` kernels take for this layout: the class, fold and
+        vowel tables (256 entries each) and [bigram shift, trigram shift, affix shift, column of
+        the first bigram bucket, column of the first trigram bucket]."""
+        is_vowel = np.zeros(256, dtype=np.uint8)
+        is_vowel[list(_VOWELS)] = 1
+        shifts = [_shift(self.bigram_buckets), _shift(self.trigram_buckets), _shift(self.affix_buckets),
+                  _FIXED_FEATURES, _FIXED_FEATURES + self.bigram_buckets]
+        return (np.frombuffer(_CLASS_BYTES, dtype=np.uint8), np.frombuffer(_FOLD_BYTES, dtype=np.uint8),
+                is_vowel, np.array(shifts, dtype=np.int64))
 
 
 def default_feature_spec() -> dict:
@@ -262,6 +279,9 @@ def featurize_columns(data: np.ndarray, offsets: np.ndarray, spec: Mapping | Fea
     check_packed(data, offsets)
     n = len(offsets) - 1
     columns = np.empty((layout.count, n), dtype=np.float32)
+    if compiled.ENABLED:
+        compiled.featurize_into(data, offsets, *layout.kernel_tables, columns)
+        return columns
     for start in range(0, n, _CHUNK_KEYS):
         stop = min(start + _CHUNK_KEYS, n)
         chunk_offsets = offsets[start : stop + 1] - offsets[start]

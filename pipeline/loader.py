@@ -33,8 +33,9 @@ from typing import Any, Iterable, Literal, Sequence
 
 import numpy as np
 
+from pipeline import compiled
 from pipeline.artifact import ArtifactError, load_artifact
-from pipeline.bloom import BloomFilter, hash_slices
+from pipeline.bloom import BloomFilter, KeyHashes, hash_slices
 from pipeline.features import FeatureLayout, feature_layout, featurize_columns, featurize_one
 from pipeline.filters import FILTER_MODES
 from pipeline.package import HASHING, HEADER_KIND
@@ -94,10 +95,27 @@ def _bytes_of(keys: Sequence[Any]) -> list[bytes]:
         raise TypeError(f"keys must be str or bytes, got {type(bad).__name__} {bad!r}") from None
 
 
-def _pack_list(keys: list[bytes]) -> PackedKeys:
-    offsets = np.zeros(len(keys) + 1, dtype=np.int64)
-    np.cumsum(np.fromiter(map(len, keys), dtype=np.int64, count=len(keys)), out=offsets[1:])
-    return PackedKeys(b"".join(keys), offsets)
+def _packed(buffer: bytes, lengths: Iterable[int], count: int) -> PackedKeys:
+    offsets = np.zeros(count + 1, dtype=np.int64)
+    np.cumsum(np.fromiter(lengths, dtype=np.int64, count=count), out=offsets[1:])
+    return PackedKeys(buffer, offsets)
+
+
+def _pack_list(keys: list | tuple) -> PackedKeys:
+    """Keys packed with one join, without a Python step per key where that is safe: a batch of
+    bytes joins as it is; a batch of str joins and encodes once, and when the encoded text is as
+    long as the text, every character took one byte, so the character counts are the byte lengths.
+    Anything else (non-ASCII text, mixed or subclassed types) is encoded key by key."""
+    kinds = set(map(type, keys))
+    if kinds <= {bytes}:
+        return _packed(b"".join(keys), map(len, keys), len(keys))
+    if kinds == {str}:
+        text = "".join(keys)
+        buffer = text.encode("utf-8")
+        if len(buffer) == len(text):
+            return _packed(buffer, map(len, keys), len(keys))
+    encoded = _bytes_of(keys)
+    return _packed(b"".join(encoded), map(len, encoded), len(encoded))
 
 
 def _is_polars_series(keys: Any) -> bool:
@@ -141,7 +159,7 @@ def pack_batch(keys: Iterable[str | bytes] | np.ndarray | Any) -> PackedKeys:
         keys = keys.tolist()
     elif not isinstance(keys, (list, tuple)):
         keys = list(keys)
-    return _pack_list(_bytes_of(keys))
+    return _pack_list(keys)
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -211,11 +229,29 @@ class MembershipFilter:
             answers[start:stop] = self._answer_chunk(packed, start, stop)
         return answers
 
+    def _scores(self, data: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+        """Integer scores of packed keys; compiled, features and trees run key by key (the same
+        scores as featurize_columns then score_columns, without the feature matrix)."""
+        if not compiled.ENABLED:
+            return score_columns(self.forest, featurize_columns(data, offsets, self._layout))
+        scores = np.empty(len(offsets) - 1, dtype=np.int64)
+        compiled.score_packed(data, offsets, *self._layout.kernel_tables, self._layout.count,
+                              *self.forest._levels.kernel_arrays, self.forest.bias, scores)
+        return scores
+
+    def warm_up(self) -> None:
+        """Compile (or load from numba's cache) the kernels `contains_many` runs, on empty input of
+        the types it passes them, so the first batch does not pay for it; nothing without numba."""
+        if compiled.ENABLED:
+            self._scores(PackedKeys(b"", np.zeros(1, dtype=np.int64)).data, np.zeros(1, dtype=np.int64))
+            empty = np.zeros(0, dtype=np.uint64)
+            for index in self._bloom_indices:
+                self.regions[index].bloom.query_hashes(KeyHashes(empty, empty))
+
     def _answer_chunk(self, packed: PackedKeys, start: int, stop: int) -> np.ndarray:
         offsets = packed.offsets[start : stop + 1]
         data = packed.data[offsets[0] : offsets[-1]]
-        columns = featurize_columns(data, offsets - offsets[0], self._layout)
-        region_index = region_of(score_columns(self.forest, columns), self._boundary_array)
+        region_index = region_of(self._scores(data, offsets - offsets[0]), self._boundary_array)
         answers = self._answer_by_mode[region_index]
         in_bloom = np.flatnonzero(self._is_bloom[region_index])
         if len(in_bloom):
@@ -332,7 +368,9 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict) -
             f"the header lists {len(entries)}"
         )
     regions = tuple(_region(path, i, entry, sections, seed) for i, entry in enumerate(entries))
-    return MembershipFilter(path, f"{version[0]}.{version[1]}", header, spec, forest, boundaries, regions, seed)
+    opened = MembershipFilter(path, f"{version[0]}.{version[1]}", header, spec, forest, boundaries, regions, seed)
+    opened.warm_up()
+    return opened
 
 
 def _open_checked(path: Path) -> MembershipFilter:

@@ -28,7 +28,9 @@ Evaluators: `score_batch`, `score_columns` and `leaf_indices` walk every tree of
 chunk down one level per numpy step (see `_reached_nodes`), over a breadth-first copy of the trees
 in which the two children of a node are adjacent, so a step is a few array gathers and one
 comparison, with no Python per row; their cost follows the depth of the leaves the rows reach.
-`score_values` and `score_row` walk one row down each tree in plain Python.
+`score_values` and `score_row` walk one row down each tree in plain Python. When numba is installed,
+`score_batch` and `score_columns` run `pipeline.compiled.score_rows` instead: each row walks
+each tree over the same breadth-first arrays, the same integer scores.
 """
 
 from __future__ import annotations
@@ -39,6 +41,8 @@ from dataclasses import dataclass
 from functools import cached_property
 
 import numpy as np
+
+from pipeline import compiled
 
 SECTION_PREFIX = "forest."
 SECTION_NAMES = ("tree_splits", "feature", "threshold", "left", "right", "value")
@@ -280,6 +284,11 @@ class _LevelLayout:
     roots: np.ndarray
     depth: int
 
+    @property
+    def kernel_arrays(self) -> tuple[np.ndarray, ...]:
+        """The forest arguments of the `pipeline.compiled` tree kernels, in their order."""
+        return self.roots, self.feature, self.threshold, self.first_child, self.value
+
 
 def _breadth_first(left: list[int], right: list[int]) -> tuple[list[int], int]:
     """(the child codes of one tree in breadth-first order, from the root, and the tree's depth)."""
@@ -418,6 +427,11 @@ def score_columns(forest: Forest, columns: np.ndarray) -> np.ndarray:
     scores = np.full(columns.shape[1], forest.bias, dtype=np.int64)
     if forest.trees == 0:
         return scores
+    if compiled.ENABLED:  # the kernel reads rows, so each chunk is transposed in cache first
+        for start in range(0, columns.shape[1], CHUNK_ROWS):
+            rows = np.ascontiguousarray(columns[:, start : start + CHUNK_ROWS].T)
+            compiled.score_rows(rows, *forest._levels.kernel_arrays, forest.bias, scores[start : start + len(rows)])
+        return scores
     value = forest._levels.value
     for start, reached in _leaves_by_chunk(forest, columns):
         scores[start : start + reached.shape[1]] += value.take(reached).sum(axis=0)
@@ -427,6 +441,10 @@ def score_columns(forest: Forest, columns: np.ndarray) -> np.ndarray:
 def score_batch(forest: Forest, X: np.ndarray) -> np.ndarray:
     """Integer scores (int64, shape (n,)) of the rows of a float32 matrix X of shape (n, d)."""
     _check_matrix(forest, X)
+    if compiled.ENABLED and forest.trees:
+        scores = np.full(len(X), forest.bias, dtype=np.int64)
+        compiled.score_rows(np.ascontiguousarray(X), *forest._levels.kernel_arrays, forest.bias, scores)
+        return scores
     scores = np.empty(len(X), dtype=np.int64)
     for start in range(0, len(X), CHUNK_ROWS):
         block = X[start : start + CHUNK_ROWS]
