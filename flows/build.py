@@ -15,6 +15,7 @@ on the chunk size or on where the chunks ran.
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import time
 from collections.abc import Callable, Iterator, Sequence
@@ -98,48 +99,66 @@ def read_corpus(config: BuildConfig) -> corpus_stage.Corpus:
     return corpus_stage.load_corpus(config.corpus.members, config.corpus.non_members, config.corpus)
 
 
+class Chunk:
+    """One chunk of a stage's keys or feature rows (with the members' regions, for insertion).
+
+    Opaque to Prefect on purpose: before a task runs, Prefect looks for futures inside its
+    arguments' lists, tuples, dicts and dataclasses, which for a chunk is a walk over every key, but
+    not inside other objects. (Prefect's `quote` does the same for a task called in the flow, but
+    its wrapper reaches a Dask worker still wrapped.)
+    """
+
+    __slots__ = ("items", "regions")
+
+    def __init__(self, items: Sequence, regions: np.ndarray | None = None):
+        self.items = items
+        self.regions = regions
+
+    def __len__(self) -> int:
+        return len(self.items)
+
+
 def chunks_of(items: Sequence, size: int) -> list[Sequence]:
     """Consecutive slices of at most `size` items; one empty slice when there are none."""
     return [items[start : start + size] for start in range(0, len(items), size)] or [items[:0]]
 
 
-# A way to run a chunk task over pieces: (task, pieces, shared arguments) -> results in order.
+# A way to run a chunk task over chunks: (task, chunks, shared arguments) -> results in order.
 ChunkMap = Callable[..., list]
 
 
-def run_in_process(chunk_task, pieces: list, *shared) -> list:
-    """A ChunkMap without Prefect: each piece through the task's own function, in turn (scripts)."""
-    return [chunk_task.fn(piece, *shared) for piece in pieces]
+def run_in_process(chunk_task, chunks: list[Chunk], *shared) -> list:
+    """A ChunkMap without Prefect: each chunk through the task's own function, in turn (scripts)."""
+    return [chunk_task.fn(chunk, *shared) for chunk in chunks]
 
 
 def map_parts(run_chunks: ChunkMap, chunk_task, parts: dict[str, Sequence], chunk_size: int, *shared) -> dict[str, np.ndarray]:
-    """Run `chunk_task(piece, *shared)` on every chunk of every part; each part's results joined in order."""
-    pieces = {name: chunks_of(items, chunk_size) for name, items in parts.items()}
-    results = iter(run_chunks(chunk_task, [piece for name in parts for piece in pieces[name]], *shared))
-    return {name: np.concatenate([next(results) for _ in pieces[name]]) for name in parts}
+    """Run `chunk_task(chunk, *shared)` on every chunk of every part; each part's results joined in order."""
+    chunks = {name: [Chunk(piece) for piece in chunks_of(items, chunk_size)] for name, items in parts.items()}
+    results = iter(run_chunks(chunk_task, [chunk for name in parts for chunk in chunks[name]], *shared))
+    return {name: np.concatenate([next(results) for _ in chunks[name]]) for name in parts}
 
 
 @_stage("features")
-def featurize_chunk(keys: list[bytes], spec: dict) -> np.ndarray:
-    return featurize(keys, spec)
+def featurize_chunk(chunk: Chunk, spec: dict) -> np.ndarray:
+    return featurize(chunk.items, spec)
 
 
 @_stage("scoring")
-def score_chunk(X: np.ndarray, forest: Forest) -> np.ndarray:
-    return score_batch(forest, X)
+def score_chunk(chunk: Chunk, forest: Forest) -> np.ndarray:
+    return score_batch(forest, chunk.items)
 
 
 @_stage("insertion")
-def fill_chunk(piece: tuple[list[bytes], np.ndarray], filters: list[RegionFilter], hash_seed: int) -> list[np.ndarray]:
-    """The bits of one chunk of members, given as (keys, their regions)."""
-    keys, regions = piece
-    return chunk_words(filters, keys, regions, hash_seed)
+def fill_chunk(chunk: Chunk, filters: list[RegionFilter], hash_seed: int) -> list[np.ndarray]:
+    """The bits of one chunk of members (chunk.regions holds their regions)."""
+    return chunk_words(filters, chunk.items, chunk.regions, hash_seed)
 
 
 @_stage("answers")
-def answer_chunk(keys: list[bytes], path: Path) -> np.ndarray:
+def answer_chunk(chunk: Chunk, path: Path) -> np.ndarray:
     """The answers of the artifact at `path`, opened as a service opens it, for one chunk of keys."""
-    return open_filter(path).contains_many(keys)
+    return open_filter(path).contains_many(chunk.items)
 
 
 def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: corpus_stage.KeySet, spec: dict, config: BuildConfig) -> dict[str, np.ndarray]:
@@ -184,8 +203,8 @@ def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, 
     regions = region_of(member_scores, plan.boundaries)
     filters = empty_filters(regions, plan.fprs, config.filters.hash_seed)
     size = config.compute.chunk_keys
-    pieces = list(zip(chunks_of(corpus.members, size), chunks_of(regions, size)))
-    words = run_chunks(fill_chunk, pieces, filters, config.filters.hash_seed)
+    chunks = [Chunk(keys, part) for keys, part in zip(chunks_of(corpus.members, size), chunks_of(regions, size))]
+    words = run_chunks(fill_chunk, chunks, filters, config.filters.hash_seed)
     return merge_words(filters, words)
 
 
@@ -250,20 +269,18 @@ class _Stages:
         self.progress(StageEvent(name, "done", seconds=self.timings[name]))
 
     def chunks(self, name: str) -> ChunkMap:
-        """A ChunkMap for stage `name`: one task run a piece on the flow's task runner, all submitted
-        at once, results taken in order; the stage's progress counts the keys of the pieces done (a
-        piece is a sequence of keys or rows, or a tuple whose first item is one)."""
+        """A ChunkMap for stage `name`: one task run a chunk on the flow's task runner, all submitted
+        at once, results taken in order; the stage's progress counts the keys of the chunks done."""
         step = self.step(name)
 
-        def run_chunks(chunk_task, pieces: list, *shared) -> list:
-            # quote: Prefect would otherwise walk every key of every piece looking for futures
-            futures = [chunk_task.submit(quote(piece), *(quote(arg) for arg in shared)) for piece in pieces]
-            sizes = [len(piece[0] if isinstance(piece, tuple) else piece) for piece in pieces]
+        def run_chunks(chunk_task, chunks: list[Chunk], *shared) -> list:
+            futures = [chunk_task.submit(chunk, *shared) for chunk in chunks]
+            total = sum(map(len, chunks))
             results, done = [], 0
-            for future, size in zip(futures, sizes):
+            for future, chunk in zip(futures, chunks):
                 results.append(future.result())
-                done += size
-                step(done, sum(sizes), "keys", chunk_task.name)
+                done += len(chunk)
+                step(done, total, "keys", chunk_task.name)
             return results
 
         return run_chunks
@@ -362,3 +379,37 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
         publish.discard_staging(staging)  # nothing to remove once it was published or refused
         raise
     return BuildOutcome(published=passed, version=version, folder=folder, report=summary)
+
+
+def flow_for(config: BuildConfig):
+    """The build flow on the task runner the config asks for: the workers of the Dask cluster whose
+    scheduler compute.cluster names (through prefect-dask), else threads on this machine. A cluster
+    that cannot be used is bad input, found before any work."""
+    if not config.compute.cluster:
+        return build_flow
+    check_cluster(config.compute.cluster)
+    from prefect_dask import DaskTaskRunner
+
+    return build_flow.with_options(task_runner=DaskTaskRunner(address=config.compute.cluster))
+
+
+# Seconds to wait for a Dask scheduler to answer before calling its address wrong.
+CLUSTER_CONNECT_SECONDS = 15
+
+
+def check_cluster(address: str) -> None:
+    """Raise BadInput unless the cluster packages are installed and the scheduler answers."""
+    if not all(importlib.util.find_spec(package) for package in ("distributed", "prefect_dask")):
+        raise BadInput(f"compute.cluster = {address!r} needs Dask: install the cluster extra (pip install 'tamis[cluster]')")
+    from distributed import Client
+
+    try:
+        with Client(address, timeout=CLUSTER_CONNECT_SECONDS) as client:
+            workers = len(client.scheduler_info()["workers"])
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise BadInput(
+            f"cannot reach the Dask scheduler at {address!r} ({type(exc).__name__}: {exc}); check compute.cluster "
+            f"(--cluster), e.g. tcp://10.0.0.5:8786, and that the scheduler is running"
+        ) from None
+    if workers == 0:
+        raise BadInput(f"the Dask scheduler at {address!r} has no workers; start some (dask worker {address})")

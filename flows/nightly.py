@@ -54,7 +54,7 @@ from prefect.settings import PREFECT_API_URL, get_current_settings, temporary_se
 from prefect.states import Failed, State
 from prefect.types.entrypoint import EntrypointType
 
-from flows.build import BuildOutcome, build_flow
+from flows.build import BuildOutcome, flow_for
 from pipeline.config import BuildConfig, ConfigError, load_config, require_paths
 from pipeline.errors import BadInput
 from pipeline.progress import StageEvent
@@ -133,7 +133,7 @@ def nightly_build(config_path: str) -> dict | State:
         if event.kind in ("done", "failed"):
             logger.info("stage %s %s after %.1f s", event.stage, event.kind, event.seconds)
 
-    return final_state(outcome_summary(build_flow(config, progress)))
+    return final_state(outcome_summary(flow_for(config)(config, progress)))
 
 
 def deployment_name(config_path: Path) -> str:

@@ -45,13 +45,13 @@ def _demo_config_path() -> Path:
 
 def _run_build(config) -> int:
     _prepare_prefect(PREFECT_BUILD_DEFAULTS)
-    from flows.build import BuildFailed, build_flow
+    from flows.build import BuildFailed, flow_for
     from pipeline.progress import progress_display
 
     started = time.perf_counter()
     try:
         with progress_display(sys.stderr) as progress:
-            outcome = build_flow(config, progress=progress)
+            outcome = flow_for(config)(config, progress=progress)
     except BuildFailed as failure:
         print(failure_text(failure, config.store.path), file=sys.stderr, end="")
         return EXIT_FAILED
@@ -138,6 +138,7 @@ def cmd_build(args) -> int:
         target={"fpr": args.target_fpr},
         store={"path": Path(args.store).resolve() if args.store else None},
         gate={"max_size_growth": 0.0, "max_member_drop": 0.0} if args.no_change_limits else {},
+        compute={"cluster": args.cluster},
     )
     return _run_build(config)
 
@@ -247,7 +248,8 @@ EXAMPLES = {
     "demo": "examples:\n  tamis demo\n  tamis demo --dir /tmp/emberfall --members 20000 --non-members 200000",
     "build": (
         "examples:\n  tamis build configs/nightly.example.toml\n"
-        "  tamis build --members banned.txt --non-members lookups.parquet --target-fpr 0.01 --store /srv/filters"
+        "  tamis build --members banned.txt --non-members lookups.parquet --target-fpr 0.01 --store /srv/filters\n"
+        "  tamis build configs/nightly.example.toml --cluster tcp://10.0.0.5:8786"
     ),
     "lookup": "examples:\n  tamis lookup store/3/artifact.tamis someone_42\n  tamis lookup store < handles.txt",
     "show": "examples:\n  tamis show store\n  tamis show store/3/artifact.tamis",
@@ -283,6 +285,9 @@ def make_parser() -> argparse.ArgumentParser:
     build.add_argument("--no-change-limits", action="store_true",
                        help="for this build, turn off the gate's limits on change against the version in service "
                             "(max_size_growth, max_member_drop): for a deliberate large change")
+    build.add_argument("--cluster", metavar="ADDRESS",
+                       help="run the per-chunk stages and training on the Dask cluster of this scheduler, "
+                            "e.g. tcp://10.0.0.5:8786 (needs the cluster extra; default: this machine)")
     build.set_defaults(run=cmd_build)
 
     lookup = command("lookup", "answer keys: KEY<TAB>maybe or KEY<TAB>no, in input order")
