@@ -240,6 +240,14 @@ def write_reports(staging: Path, summary: dict, scores: ScoreSample) -> None:
     write_report_page(staging, summary, scores)
 
 
+def check_inputs(config: BuildConfig) -> None:
+    """The checks that need no reading: the paths are given, both sources open and fit in memory,
+    the store can be written. Cheap, so the CLI runs them before Prefect starts (seconds)."""
+    require_paths(config)
+    corpus_stage.check_sources(config.corpus.members, config.corpus.non_members)
+    publish.check_store(config.store.path)
+
+
 class _Stages:
     """Runs stages in order: sends their progress events, keeps their timings, names a failure."""
 
@@ -306,9 +314,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
     training) and BuildFailed when a stage fails otherwise.
     """
     stages = _Stages(progress or no_progress)
-    require_paths(config)
+    check_inputs(config)
     store = config.store.path
-    publish.check_store(store)  # a store that cannot be used stops the build before any work
 
     with stages.stage("corpus"):
         corpus = read_corpus(quote(config))

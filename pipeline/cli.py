@@ -45,13 +45,15 @@ def _demo_config_path() -> Path:
 
 def _run_build(config) -> int:
     _prepare_prefect(PREFECT_BUILD_DEFAULTS)
-    from flows.build import BuildFailed, flow_for
+    from flows.build import BuildFailed, check_inputs, flow_for
     from pipeline.progress import progress_display
 
     started = time.perf_counter()
+    check_inputs(config)  # bad paths fail in a second, before Prefect starts its server
+    build = flow_for(config)
     try:
         with progress_display(sys.stderr) as progress:
-            outcome = flow_for(config)(config, progress=progress)
+            outcome = build(config, progress=progress)
     except BuildFailed as failure:
         print(failure_text(failure, config.store.path), file=sys.stderr, end="")
         return EXIT_FAILED
@@ -173,7 +175,18 @@ def cmd_lookup(args) -> int:
     return 0
 
 
-def show_text(path: Path, info: dict, report: dict | None) -> str:
+def report_text(report_path: Path) -> str:
+    """The summary of the report beside an artifact for `tamis show`; nothing when there is none,
+    and a line saying why when it cannot be read (the artifact itself is still shown)."""
+    if not report_path.is_file():
+        return ""
+    try:
+        return summary_text(json.loads(report_path.read_text()), report_path.parent) + f"report: {report_path}\n"
+    except (OSError, ValueError, LookupError, TypeError) as exc:
+        return f"report: {report_path} is unreadable or incomplete ({type(exc).__name__}: {exc}); the artifact above is complete\n"
+
+
+def show_text(path: Path, info: dict) -> str:
     """What `tamis show` prints: the header in words, the regions as a table, the report's summary."""
     provenance = info.get("provenance", {})
     forest = info.get("forest", {})
@@ -195,9 +208,7 @@ def show_text(path: Path, info: dict, report: dict | None) -> str:
         lines.append(
             f"  measured on {measured['keys']:,} held-out keys: FPR {measured['fpr']:.4%} (upper bound {measured['fpr_upper']:.4%} at {measured['confidence']:.0%})"
         )
-    text = "\n".join(lines) + "\n"
-    if report is not None:
-        text += summary_text(report, path.parent) + f"report: {path.with_name(publish.REPORT_NAME)}\n"
+    text = "\n".join(lines) + "\n" + report_text(path.with_name(publish.REPORT_NAME))
     from pipeline.report_page import REPORT_PAGE_NAME
 
     page = path.with_name(REPORT_PAGE_NAME)
@@ -209,9 +220,7 @@ def show_text(path: Path, info: dict, report: dict | None) -> str:
 def cmd_show(args) -> int:
     path = _artifact_path(args.artifact)
     loaded = _open(args.artifact)
-    report_path = path.with_name(publish.REPORT_NAME)
-    report = json.loads(report_path.read_text()) if report_path.is_file() else None
-    print(show_text(path, loaded.info, report), end="")
+    print(show_text(path, loaded.info), end="")
     return 0
 
 

@@ -4,6 +4,7 @@ size asked for, and the build's key numbers in its text."""
 import base64
 import copy
 import io
+import shutil
 import struct
 import xml.etree.ElementTree as ET
 
@@ -110,6 +111,20 @@ def test_show_prints_the_page_path(builds, capsys):
     out = capsys.readouterr().out
     assert f"report page: {store / str(second.version) / REPORT_PAGE_NAME}" in out
     assert "in service: version 1 misses 0 of today's members" in out
+
+
+@pytest.mark.parametrize("damage", ["cut", "not json", "fields missing"])
+def test_show_still_shows_the_artifact_when_the_report_is_damaged(builds, tmp_path, capsys, damage):
+    _, second = builds
+    folder = tmp_path / "copy"
+    shutil.copytree(second.folder, folder)
+    report = folder / "report.json"
+    text = report.read_text()
+    report.write_text({"cut": text[: len(text) // 2], "not json": "[]", "fields missing": '{"version": 2}'}[damage])
+    assert cli.main(["show", str(folder / "artifact.tamis")]) == 0
+    out = capsys.readouterr().out
+    assert "region  scores from" in out and "measured on" in out
+    assert f"report: {report} is unreadable or incomplete" in out
 
 
 
