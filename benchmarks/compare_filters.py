@@ -324,7 +324,8 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
         sample = verify.require_heldout(corpus.heldout, corpus.has_counts, target, config.gate, config.corpus.heldout_share)
     except BadInput:
         return TargetResult(prepared.name, target, refused=refusal(prepared, target))
-    aim = verify.aim_fpr(target, sample, config.gate.confidence, config.gate.aim_sigmas)
+    plan_sample = verify.heldout_sample(corpus.validation, corpus.has_counts)
+    aim = verify.aim_fpr(target, sample, plan_sample, config.gate.confidence, config.gate.aim_sigmas)
     started = time.perf_counter()
     choice = train_model.fn(corpus, prepared.train, prepared.features, aim, config, quiet)
     plan, scores = choose_regions(run_in_process, corpus, prepared.features, choice.forest, aim, config)

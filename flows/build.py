@@ -324,7 +324,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
             corpus.heldout, corpus.has_counts, config.target.fpr, config.gate, config.corpus.heldout_share
         )
     provenance = build_provenance(config, corpus)
-    aim = verify.aim_fpr(config.target.fpr, heldout_size, config.gate.confidence, config.gate.aim_sigmas)
+    plan_size = verify.heldout_sample(corpus.validation, corpus.has_counts)
+    aim = verify.aim_fpr(config.target.fpr, heldout_size, plan_size, config.gate.confidence, config.gate.aim_sigmas)
     spec = default_feature_spec()
     train = corpus_stage.sample_keys(corpus.train, config.model.train_nonmembers, config.model.seed)
     with stages.stage("features"):

@@ -92,18 +92,22 @@ def measure_fpr(answers: np.ndarray, heldout: KeySet, weighted: bool, confidence
     return Measurement(len(answers), lookups, fp_keys, fp_lookups, fpr, upper, confidence, n_eff)
 
 
-def aim_fpr(target: float, effective_sample: float, confidence: float, aim_sigmas: float) -> float:
+def aim_fpr(target: float, effective_sample: float, plan_sample: float, confidence: float, aim_sigmas: float) -> float:
     """The rate to plan for so that a build hitting it passes the gate with high probability.
 
-    On n draws a true rate f gives about f n false positives, and up to x(f) = f n + s sqrt(f (1-f) n)
-    in all but the unluckiest builds (s = `aim_sigmas` standard deviations). Plan for the largest f
-    whose x(f) still has a Clopper-Pearson upper bound at most the target; both sides grow with f, so
-    bisection finds it.
+    On n held-out draws a true rate f gives about f n false positives. The plan's rate is itself
+    estimated on `plan_sample` validation draws, so the count also moves with the plan's error: its
+    variance is f (1-f) n (1 + n / plan_sample), the held-out draws' own binomial variance plus n^2
+    times that of the validation estimate. In all but the unluckiest builds the count stays below
+    x(f) = f n + s sqrt(f (1-f) n (1 + n / plan_sample)) (s = `aim_sigmas` standard deviations).
+    Plan for the largest f whose x(f) still has a Clopper-Pearson upper bound at most the target;
+    both sides grow with f, so bisection finds it.
     """
     n = effective_sample
+    spread = n * (1 + n / plan_sample)
 
     def passes(f: float) -> bool:
-        unlucky = f * n + aim_sigmas * math.sqrt(f * (1 - f) * n)
+        unlucky = f * n + aim_sigmas * math.sqrt(f * (1 - f) * spread)
         return clopper_pearson_upper(unlucky, n, confidence) <= target
 
     low, high = 0.0, target

@@ -46,13 +46,39 @@ def test_measure_fpr_by_keys_and_by_lookups():
 
 def test_aim_leaves_room_for_the_bound_and_the_noise():
     n = 300_000
-    aim = aim_fpr(0.01, n, 0.95, 2.0)
+    aim = aim_fpr(0.01, n, math.inf, 0.95, 2.0)  # a plan known exactly: held-out noise only
     unlucky = aim * n + 2.0 * math.sqrt(aim * (1 - aim) * n)
     assert clopper_pearson_upper(unlucky, n, 0.95) == pytest.approx(0.01, rel=1e-6)
     # the normal approximation of the same margin (1.645 + 2 standard errors) lands close by
     z = stats.norm.ppf(0.95) + 2.0
     assert aim + z * math.sqrt(aim * (1 - aim) / n) == pytest.approx(0.01, rel=0.01)
-    assert aim_fpr(0.01, 1_000, 0.95, 2.0) < aim  # fewer held-out keys: aim lower
+    assert aim_fpr(0.01, 1_000, math.inf, 0.95, 2.0) < aim  # fewer held-out keys: aim lower
+    # a plan estimated on as many validation draws doubles the variance of the count (the
+    # variance of a difference of two independent binomial estimates adds; common practice)
+    planned = aim_fpr(0.01, n, n, 0.95, 2.0)
+    unlucky = planned * n + 2.0 * math.sqrt(planned * (1 - planned) * 2 * n)
+    assert planned < aim and clopper_pearson_upper(unlucky, n, 0.95) == pytest.approx(0.01, rel=1e-6)
+
+
+def test_the_aim_covers_the_error_of_a_plan_estimated_on_validation_draws():
+    """Simulated: a plan sets its rate f on validation draws (estimate f_hat of a true rate p), so
+    the true rate is p = f * p / f_hat. Held-out draws then measure p. With the aim covering both
+    samples, the gate's bound passes in at least ~97.7% of builds (2 sigmas), as promised."""
+    rng = np.random.default_rng(5)
+    n, target = 50_000, 0.01
+    aim = aim_fpr(target, n, n, 0.95, 2.0)
+    builds = 4_000
+    p = aim  # the plan's true rate when its validation estimate is exact
+    estimate = rng.binomial(n, p, builds) / n  # the validation estimate of the plan's rate
+    true_rate = p * aim / estimate  # the plan scales its rate so that the estimate meets the aim
+    measured = rng.binomial(n, np.minimum(true_rate, 1.0))
+    passed = np.array([clopper_pearson_upper(x, n, 0.95) <= target for x in measured])
+    assert passed.mean() >= 0.97
+    # planning for the held-out noise alone passes visibly less often
+    naive = aim_fpr(target, n, math.inf, 0.95, 2.0)
+    naive_rate = naive * naive / (rng.binomial(n, naive, builds) / n)
+    naive_passed = np.array([clopper_pearson_upper(x, n, 0.95) <= target for x in rng.binomial(n, naive_rate)])
+    assert naive_passed.mean() < passed.mean() - 0.03
 
 
 def test_a_rate_on_target_passes_the_bound_at_about_the_stated_confidence():
