@@ -36,7 +36,7 @@ from pipeline.drift import Drift, measure_drift
 from pipeline.errors import BadInput
 from pipeline.features import default_feature_spec, featurize
 from pipeline.filters import RegionFilter, chunk_words, empty_filters, merge_words
-from pipeline.model import fit_model
+from pipeline.model import fit_model, fit_model_on_cluster
 from pipeline.package import package_artifact
 from pipeline.progress import Progress, StageEvent, no_progress
 from pipeline.provenance import build_provenance
@@ -179,7 +179,7 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
         step(priced, None, "checkpoints priced", "")
         return cost
 
-    return fit_model(
+    inputs = (
         X["members"],
         X["train"],
         train.counts.astype(np.float64),
@@ -188,6 +188,12 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
         filter_bytes,
         config.model,
     )
+    if not config.compute.cluster:
+        return fit_model(*inputs)
+    from distributed import Client  # this task runs in the flow's process, not on a worker
+
+    with Client(config.compute.cluster, timeout=CLUSTER_CONNECT_SECONDS) as client:
+        return fit_model_on_cluster(client, *inputs)
 
 
 def choose_regions(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, aim: float, config: BuildConfig):

@@ -7,6 +7,8 @@ plus the backup filters it needs at the target false-positive rate. The caller's
 prices the filters from the compiled integer scores of all members and of validation non-members
 the model never trained on. Every candidate (leaves x learning rate) grows tree by tree; at every
 checkpoint its prefix is compiled and priced, and the cheapest prefix of all candidates wins.
+On a Dask cluster (`fit_model_on_cluster`), LightGBM's Dask interface trains each candidate up to
+its tree cap and the same pricing walks its prefixes; dask is imported only there.
 
 Compilation turns LightGBM's trees (`Booster.dump_model()`) into a `pipeline.trees.Forest`:
 thresholds snapped to float32, leaf values quantised to integers.
@@ -16,7 +18,8 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Callable, Sequence
+import warnings
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 
 import lightgbm as lgb
@@ -299,20 +302,26 @@ class _Priced:
     val_scores: np.ndarray
 
 
-def _training_set(X_members, X_train_non, w_train_non, settings: ModelSettings) -> lgb.Dataset:
+def _training_rows(X_members, X_train_non, w_train_non, settings: ModelSettings) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(rows, labels, weights): every member (label 1, weight 1), then the training non-members
+    (label 0; `train_nonmembers` of them drawn when there are more), weighted by their lookup counts
+    through WEIGHTINGS and scaled to sum to the member count."""
     if len(X_train_non) > settings.train_nonmembers:
         rng = np.random.default_rng(settings.seed)
         pick = np.sort(rng.choice(len(X_train_non), settings.train_nonmembers, replace=False))
         X_train_non, w_train_non = X_train_non[pick], np.asarray(w_train_non)[pick]
     weights = WEIGHTINGS[settings.weighting](np.asarray(w_train_non, dtype=np.float64))
     weights = weights * (len(X_members) / weights.sum())
-    return lgb.Dataset(
+    return (
         np.vstack([X_members, X_train_non]),
-        label=np.concatenate([np.ones(len(X_members)), np.zeros(len(X_train_non))]),
-        weight=np.concatenate([np.ones(len(X_members)), weights]),
-        params=_dataset_params(settings),
-        free_raw_data=True,
+        np.concatenate([np.ones(len(X_members)), np.zeros(len(X_train_non))]),
+        np.concatenate([np.ones(len(X_members)), weights]),
     )
+
+
+def _training_set(X_members, X_train_non, w_train_non, settings: ModelSettings) -> lgb.Dataset:
+    rows, labels, weights = _training_rows(X_members, X_train_non, w_train_non, settings)
+    return lgb.Dataset(rows, label=labels, weight=weights, params=_dataset_params(settings), free_raw_data=True)
 
 
 def _dataset_params(settings: ModelSettings) -> dict:
@@ -330,6 +339,11 @@ def _booster_params(leaves: int, learning_rate: float, settings: ModelSettings) 
         "deterministic": True,
         "force_col_wise": True,  # LightGBM asks for a fixed histogram layout with deterministic=true
     }
+
+
+def _tree_cap(leaves: int, settings: ModelSettings) -> int:
+    """The most trees a candidate of `leaves` leaves grows: max_trees, and the node budget."""
+    return min(settings.max_trees, settings.max_nodes_per_key // (leaves - 1))
 
 
 @dataclass
@@ -396,27 +410,48 @@ class _Pricing:
         return self.price(forest, member_scores, val_scores, None, None)
 
 
-def _grow_candidate(dataset: lgb.Dataset, leaves: int, learning_rate: float, pricing: _Pricing, settings: ModelSettings) -> list[_Priced]:
-    """Grow one candidate, compiling and pricing its prefix every `checkpoint_every` trees.
+# A candidate's trees as consecutive blocks, one block per checkpoint (see _price_blocks).
+TreeBlocks = Iterator[list[RawTree]]
 
-    Stops at the tree cap (max_trees, and the node budget), after `patience` checkpoints without
-    a cheaper total, or when LightGBM can split no further. A checkpoint walks the pricing rows
-    through its new trees only (see `_Scores`).
+
+def _grown_blocks(booster: lgb.Booster, tree_cap: int, every: int) -> TreeBlocks:
+    """Grow a booster `every` trees at a time up to `tree_cap`, yielding each block of new trees.
+
+    Lazy: the next block is grown only when asked for, so a candidate that stops on patience costs
+    no more trees. Stops early when LightGBM can split no further.
     """
-    tree_cap = min(settings.max_trees, settings.max_nodes_per_key // (leaves - 1))
-    booster = lgb.Booster(_booster_params(leaves, learning_rate, settings), dataset)
+    done, finished = 0, False
+    while done < tree_cap and not finished:
+        target = min(tree_cap, done + every)
+        while booster.current_iteration() < target and not finished:
+            finished = booster.update()
+        new = booster_trees(booster, done, booster.current_iteration())
+        if not new:
+            return
+        done += len(new)
+        yield new
+
+
+def _trained_blocks(booster: lgb.Booster, every: int) -> TreeBlocks:
+    """The trees of a booster already trained to its tree cap, `every` at a time: its prefixes."""
+    total = booster.num_trees()
+    for start in range(0, total, every):
+        yield booster_trees(booster, start, min(total, start + every))
+
+
+def _price_blocks(blocks: TreeBlocks, leaves: int, learning_rate: float, pricing: _Pricing, settings: ModelSettings) -> list[_Priced]:
+    """Compile and price a candidate's prefix after every block of trees, the cheapest total wins.
+
+    Stops after `patience` checkpoints without a cheaper total, or when the blocks run out (the
+    tree cap, or LightGBM could split no further). A checkpoint walks the pricing rows through its
+    new trees only (see `_Scores`).
+    """
     features = pricing.X_members.shape[1]
     trees: list[RawTree] = []
     members, validation = _Scores(), _Scores()
     priced: list[_Priced] = []
-    best, stale, finished = math.inf, 0, False
-    while len(trees) < tree_cap and stale < settings.patience and not finished:
-        target = min(tree_cap, len(trees) + settings.checkpoint_every)
-        while booster.current_iteration() < target and not finished:
-            finished = booster.update()
-        new = booster_trees(booster, len(trees), booster.current_iteration())
-        if not new:
-            break
+    best, stale = math.inf, 0
+    for new in blocks:
         trees.extend(new)
         forest = compile_trees(trees, features)
         block = compile_trees(new, features)  # only the new trees walk the rows
@@ -427,7 +462,47 @@ def _grow_candidate(dataset: lgb.Dataset, leaves: int, learning_rate: float, pri
         total = priced[-1].row["total_bytes"]
         stale = 0 if total < best else stale + 1
         best = min(best, total)
+        if stale >= settings.patience:
+            break
     return priced
+
+
+def _choose(pricing: _Pricing, blocks: Callable[[int, float], TreeBlocks], train_rows: int, settings: ModelSettings) -> ModelChoice:
+    """Price the forest of no trees and every candidate's checkpoints (`blocks(leaves, rate)`
+    gives a candidate's trees), and keep the cheapest."""
+    priced = [pricing.baseline()] + [
+        entry
+        for leaves in settings.leaves
+        for learning_rate in settings.learning_rates
+        for entry in _price_blocks(blocks(leaves, learning_rate), leaves, learning_rate, pricing, settings)
+    ]
+    chosen = min(priced, key=lambda entry: entry.row["total_bytes"])  # the first of equals: grid order
+    params = {
+        "leaves": chosen.row["leaves"],
+        "learning_rate": chosen.row["learning_rate"],
+        "weighting": settings.weighting,
+        "train_nonmembers": min(train_rows, settings.train_nonmembers),
+        "max_bin": settings.max_bin,
+        "min_leaf_rows": settings.min_leaf_rows,
+        "feature_fraction": settings.feature_fraction,
+        "seed": settings.seed,
+    }
+    return ModelChoice(
+        forest=chosen.forest,
+        trees=chosen.forest.trees,
+        params=params,
+        auc=weighted_auc(chosen.member_scores, chosen.val_scores, pricing.w_val_non),
+        model_bytes=chosen.row["model_bytes"],
+        filter_bytes=chosen.row["filter_bytes"],
+        total_bytes=chosen.row["total_bytes"],
+        candidates=[entry.row for entry in priced],
+        train_seconds=time.perf_counter() - pricing.clock_start,
+    )
+
+
+def _pricing(X_members, X_train_non, w_train_non, X_val_non, w_val_non, filter_bytes: FilterBytes) -> _Pricing:
+    _check_inputs(X_members, X_train_non, w_train_non, X_val_non, w_val_non)
+    return _Pricing(X_members, X_val_non, np.asarray(w_val_non, dtype=np.float64), filter_bytes, time.perf_counter())
 
 
 def fit_model(
@@ -448,37 +523,136 @@ def fit_model(
     members against validation non-members weighted by their lookup counts (the same weighting
     as the false-positive rate); it is 0.5 for the forest of no trees.
     """
-    _check_inputs(X_members, X_train_non, w_train_non, X_val_non, w_val_non)
-    pricing = _Pricing(X_members, X_val_non, np.asarray(w_val_non, dtype=np.float64), filter_bytes, time.perf_counter())
+    pricing = _pricing(X_members, X_train_non, w_train_non, X_val_non, w_val_non, filter_bytes)
     dataset = _training_set(X_members, X_train_non, w_train_non, settings)
-    priced = [pricing.baseline()] + [
-        entry
-        for leaves in settings.leaves
-        for learning_rate in settings.learning_rates
-        for entry in _grow_candidate(dataset, leaves, learning_rate, pricing, settings)
-    ]
-    chosen = min(priced, key=lambda entry: entry.row["total_bytes"])  # the first of equals: grid order
-    params = {
-        "leaves": chosen.row["leaves"],
-        "learning_rate": chosen.row["learning_rate"],
-        "weighting": settings.weighting,
-        "train_nonmembers": min(len(X_train_non), settings.train_nonmembers),
-        "max_bin": settings.max_bin,
-        "min_leaf_rows": settings.min_leaf_rows,
-        "feature_fraction": settings.feature_fraction,
-        "seed": settings.seed,
-    }
-    return ModelChoice(
-        forest=chosen.forest,
-        trees=chosen.forest.trees,
-        params=params,
-        auc=weighted_auc(chosen.member_scores, chosen.val_scores, pricing.w_val_non),
-        model_bytes=chosen.row["model_bytes"],
-        filter_bytes=chosen.row["filter_bytes"],
-        total_bytes=chosen.row["total_bytes"],
-        candidates=[entry.row for entry in priced],
-        train_seconds=time.perf_counter() - pricing.clock_start,
-    )
+
+    def blocks(leaves: int, learning_rate: float) -> TreeBlocks:
+        booster = lgb.Booster(_booster_params(leaves, learning_rate, settings), dataset)
+        return _grown_blocks(booster, _tree_cap(leaves, settings), settings.checkpoint_every)
+
+    return _choose(pricing, blocks, len(X_train_non), settings)
+
+
+# Training on a Dask cluster -------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ClusterRows:
+    """Training rows dealt out to the workers of a Dask cluster, one part per worker.
+
+    The rows, ordered by label, are dealt like cards: of n workers (in sorted address order),
+    worker i holds rows i, i + n, i + 2n, ... of that order. So every part has its share of each
+    label: distributed LightGBM finds the histogram bins of each feature from the rows of one
+    worker, which must look like all of them, and each worker's classifier must see both labels
+    (n is at most the count of the rarer label). `parts` keeps the scattered data alive on the
+    workers for as long as this object lives.
+    """
+
+    client: object  # distributed.Client
+    rows: object  # dask arrays, one chunk per worker
+    labels: object
+    weights: object
+    parts: tuple
+
+
+def scatter_rows(client, rows: np.ndarray, labels: np.ndarray, weights: np.ndarray) -> ClusterRows:
+    """Send training rows, labels and weights to the workers of `client` (a distributed.Client)."""
+    import dask.array as da  # only the cluster path needs dask
+
+    workers = sorted(client.nthreads())
+    if not workers:
+        raise ValueError(f"the Dask cluster at {client.scheduler.address} has no workers; start some or wait for them")
+    workers = workers[: int(np.unique(labels, return_counts=True)[1].min())]
+    order = np.argsort(labels, kind="stable")
+    dealt = [np.sort(order[index :: len(workers)]) for index in range(len(workers))]
+    parts, arrays = [], []
+    for array in (rows, labels, weights):
+        chunks = []
+        for pick, worker in zip(dealt, workers):
+            part = array[pick]
+            future = client.scatter(part, workers=[worker], hash=False)
+            parts.append(future)
+            chunks.append(da.from_delayed(future, shape=part.shape, dtype=part.dtype))
+        arrays.append(da.concatenate(chunks))
+    return ClusterRows(client, *arrays, parts=tuple(parts))
+
+
+class _RankedClient:
+    """A distributed.Client whose `who_has` lists workers in sorted address order.
+
+    LightGBM's Dask interface (4.x) numbers its machines in the order `who_has` lists the workers
+    holding the data, which follows a set of random task keys. The numbering changes what
+    distributed LightGBM computes where (as we recall its source: which machine bins which
+    features from its own rows), and the trees changed from one training to the next (in 3 runs
+    of 3 of the determinism test in tests/test_cluster.py). With the workers sorted, worker i is machine i and holds part i (see
+    ClusterRows): the same rows on the same number of workers give the same trees.
+    """
+
+    def __init__(self, client):
+        self._client = client
+
+    def __getattr__(self, name: str):
+        return getattr(self._client, name)
+
+    def who_has(self, futures=None, **kwargs) -> dict:
+        holders = self._client.who_has(futures, **kwargs)
+        return dict(sorted(holders.items(), key=lambda item: (sorted(item[1]), str(item[0]))))
+
+
+def train_on_cluster(data: ClusterRows, params: dict, trees: int) -> lgb.Booster:
+    """A binary booster of (at most) `trees` trees, trained on the cluster by LightGBM's Dask
+    interface with these LightGBM parameters.
+
+    Every worker trains with as many threads as it has (LightGBM's Dask interface sets
+    num_threads itself) and listens on a free port it finds and holds until training starts, so
+    parallel builds on one machine do not collide.
+    """
+    from lightgbm.dask import DaskLGBMClassifier  # only the cluster path needs dask
+
+    params = {name: value for name, value in params.items() if name != "num_threads"}
+    model = DaskLGBMClassifier(client=_RankedClient(data.client), n_estimators=trees, **params)
+    with warnings.catch_warnings():
+        # it warns that the sklearn interface's n_jobs, which it replaces by the workers' threads, is ignored
+        warnings.filterwarnings("ignore", message="Parameter n_jobs will be ignored", category=UserWarning)
+        model.fit(data.rows, data.labels, sample_weight=data.weights)
+    return model.booster_
+
+
+def fit_model_on_cluster(
+    client,
+    X_members: np.ndarray,
+    X_train_non: np.ndarray,
+    w_train_non: np.ndarray,
+    X_val_non: np.ndarray,
+    w_val_non: np.ndarray,
+    filter_bytes: FilterBytes,
+    settings: ModelSettings = ModelSettings(),
+) -> ModelChoice:
+    """`fit_model`, with every candidate trained on the Dask cluster of `client` (a
+    distributed.Client) through LightGBM's Dask interface.
+
+    The training rows, labels and weights are those of `fit_model`, scattered once to the workers
+    for all candidates. Each candidate trains up to its tree cap in one go; its prefixes are then
+    compiled and priced every `checkpoint_every` trees on this machine, with the same pricing and
+    the same patience rule as `fit_model`. Distributed LightGBM finds its histogram bins and sums
+    its histograms across workers, so its trees are not those of a local run; they are the same
+    from one run to the next on the same number of workers (see `_RankedClient`).
+
+    Inside a task that runs on a Dask worker, pass `distributed.worker_client()`: it frees the
+    worker's thread, which LightGBM needs there. A plain Client opened in the task (as
+    prefect_dask.get_dask_client does) holds that thread, and training waits for it forever on a
+    worker of one thread.
+    """
+    pricing = _pricing(X_members, X_train_non, w_train_non, X_val_non, w_val_non, filter_bytes)
+    data = scatter_rows(client, *_training_rows(X_members, X_train_non, w_train_non, settings))
+    try:
+        def blocks(leaves: int, learning_rate: float) -> TreeBlocks:
+            booster = train_on_cluster(data, _booster_params(leaves, learning_rate, settings), _tree_cap(leaves, settings))
+            return _trained_blocks(booster, settings.checkpoint_every)
+
+        return _choose(pricing, blocks, len(X_train_non), settings)
+    finally:
+        client.cancel(list(data.parts))
 
 
 def _check_inputs(X_members, X_train_non, w_train_non, X_val_non, w_val_non) -> None:

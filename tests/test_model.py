@@ -247,19 +247,27 @@ def test_fit_model_prices_checkpoints_with_the_compiled_scores(corpus, fast_choi
     assert fast_choice.params["leaves"] in FAST.leaves and fast_choice.trees == forest.trees > 0
 
 
+def assert_budget_and_patience(choice, settings: ModelSettings) -> None:
+    """Every priced row within the node budget; each candidate priced every `checkpoint_every`
+    trees and stopped at its tree cap or `patience` checkpoints after its cheapest."""
+    rows = choice.candidates
+    assert all(row["nodes_per_key"] <= settings.max_nodes_per_key for row in rows)
+    assert choice.forest.nodes_per_key <= settings.max_nodes_per_key
+    for leaves in settings.leaves:
+        for rate in settings.learning_rates:
+            mine = [row for row in rows if (row["leaves"], row["learning_rate"]) == (leaves, rate)]
+            cap = min(settings.max_trees, settings.max_nodes_per_key // (leaves - 1))
+            every = settings.checkpoint_every
+            assert [row["trees"] for row in mine] == [min(cap, every * (i + 1)) for i in range(len(mine))]
+            best_at = min(range(len(mine)), key=lambda i: mine[i]["total_bytes"])
+            after_best = len(mine) - 1 - best_at
+            assert after_best <= settings.patience
+            if after_best < settings.patience:  # it stopped for another reason: the tree cap
+                assert mine[-1]["trees"] == cap
+
+
 def test_fit_model_respects_the_node_budget_and_stops_on_patience(fast_choice):
-    rows = fast_choice.candidates
-    assert all(row["nodes_per_key"] <= FAST.max_nodes_per_key for row in rows)
-    assert fast_choice.forest.nodes_per_key <= FAST.max_nodes_per_key
-    for leaves in FAST.leaves:
-        mine = [row for row in rows if row["leaves"] == leaves]
-        cap = min(FAST.max_trees, FAST.max_nodes_per_key // (leaves - 1))
-        assert max(row["trees"] for row in mine) <= cap
-        best_at = min(range(len(mine)), key=lambda i: mine[i]["total_bytes"])
-        after_best = len(mine) - 1 - best_at
-        assert after_best <= FAST.patience
-        if after_best < FAST.patience:  # it stopped for another reason: the tree cap
-            assert mine[-1]["trees"] == cap
+    assert_budget_and_patience(fast_choice, FAST)
 
 
 def test_fit_model_chooses_a_smaller_candidate_than_the_largest(fast_choice):
