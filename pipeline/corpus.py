@@ -39,6 +39,7 @@ import xxhash
 
 from pipeline.config import CorpusSettings
 from pipeline.errors import BadInput
+from pipeline.model import training_sample
 
 TABLE_SUFFIXES = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".ndjson": "ndjson", ".jsonl": "ndjson"}
 
@@ -460,11 +461,11 @@ def _subset(keys: list[bytes], counts: np.ndarray, mask: np.ndarray) -> KeySet:
 
 
 def sample_keys(keys: KeySet, size: int, seed: int) -> KeySet:
-    """At most `size` of the keys, drawn uniformly without replacement from a seeded generator and
-    kept in their order; all of them when there are no more than `size`."""
+    """At most `size` of the keys, in their order: the sample the model stage would draw from their
+    feature rows (`pipeline.model.training_sample`), drawn before any feature is computed."""
     if len(keys.keys) <= size:
         return keys
-    pick = np.sort(np.random.default_rng(seed).choice(len(keys.keys), size, replace=False))
+    pick = training_sample(len(keys.keys), size, seed)
     return KeySet([keys.keys[i] for i in pick], keys.counts[pick])
 
 

@@ -302,13 +302,20 @@ class _Priced:
     val_scores: np.ndarray
 
 
+def training_sample(rows: int, size: int, seed: int) -> np.ndarray:
+    """Indices of the training non-members that train, ascending: all `rows` when there are at
+    most `size`, else `size` of them drawn uniformly without replacement from a seeded generator."""
+    if rows <= size:
+        return np.arange(rows)
+    return np.sort(np.random.default_rng(seed).choice(rows, size, replace=False))
+
+
 def _training_rows(X_members, X_train_non, w_train_non, settings: ModelSettings) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(rows, labels, weights): every member (label 1, weight 1), then the training non-members
     (label 0; `train_nonmembers` of them drawn when there are more), weighted by their lookup counts
     through WEIGHTINGS and scaled to sum to the member count."""
     if len(X_train_non) > settings.train_nonmembers:
-        rng = np.random.default_rng(settings.seed)
-        pick = np.sort(rng.choice(len(X_train_non), settings.train_nonmembers, replace=False))
+        pick = training_sample(len(X_train_non), settings.train_nonmembers, settings.seed)
         X_train_non, w_train_non = X_train_non[pick], np.asarray(w_train_non)[pick]
     weights = WEIGHTINGS[settings.weighting](np.asarray(w_train_non, dtype=np.float64))
     weights = weights * (len(X_members) / weights.sum())

@@ -14,15 +14,18 @@ from pipeline.corpus import (
     BUILD_BASE_BYTES,
     BUILD_BYTES_PER_KEY,
     MEMORY_LIMIT_ENV,
+    KeySet,
     available_memory,
     estimate_build_memory,
     estimate_rows,
     load_corpus,
     merge_duplicates,
     read_source,
+    sample_keys,
     split_buckets,
 )
 from pipeline.errors import BadInput
+from pipeline.model import training_sample
 
 SETTINGS = CorpusSettings()
 
@@ -324,3 +327,12 @@ def test_available_memory_without_a_limit_is_what_the_system_reports(monkeypatch
     monkeypatch.delenv(MEMORY_LIMIT_ENV, raising=False)
     physical = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
     assert 0 < available_memory() <= physical
+
+
+def test_the_training_sample_is_drawn_once_the_same_way_from_keys_or_rows():
+    keys = KeySet([b"k%d" % i for i in range(1000)], np.arange(1000, dtype=np.int64) + 1)
+    sample = sample_keys(keys, 100, seed=4)
+    pick = training_sample(1000, 100, seed=4)
+    assert sample.keys == [keys.keys[i] for i in pick] and np.array_equal(sample.counts, keys.counts[pick])
+    assert len(set(sample.keys)) == 100 and list(pick) == sorted(pick)
+    assert sample_keys(keys, 1000, seed=4) is keys
