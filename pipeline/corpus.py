@@ -64,18 +64,19 @@ _OPEN_PROBLEMS = {
     errno.ENAMETOOLONG: "the path is too long; check it",
 }
 
-# Memory a build holds at its peak, measured with `/usr/bin/time -v` (maximum resident set) on two
-# Emberfall demo corpora through `tamis build` (keys of 12 bytes on average; [model] leaves = [15],
-# learning_rates = [0.3], max_trees = 20): 20,000 + 200,000 keys peaked at 479 MiB and 60,000 +
-# 600,000 keys at 757 MiB, a slope of 662 bytes a key (its bytes objects, a float32 row of 89
-# features, its share of the training set and the lookup tables) over a base of 357 MB (Python,
-# polars, LightGBM and Prefect's embedded server). Rounded up here, for the estimate informs a
-# refusal: a build is refused only when even this estimate exceeds the memory available. Key
-# length barely counts: 220,000 keys of 112 bytes peaked at 385 MiB against 387 MiB for the same
-# keys of 12 bytes (a build without Prefect, tests/tamis_testing.py's small model), so the
-# estimate counts keys only.
-BUILD_BYTES_PER_KEY = 700
-BUILD_BASE_BYTES = 400 * 2**20
+# Memory a build holds at its peak, measured by benchmarks/scale.py (the maximum resident set of a
+# `tamis build` process, from os.wait4) on Emberfall demo corpora of one member to nine looked-up non-members
+# (keys of about 12 bytes, default settings, numba, 300,000 training non-members): 1M keys peaked at
+# 1.28 GiB, 3M at 2.02 GiB and 10M at 4.85 GiB, a slope of about 426 bytes a key (its bytes
+# objects, its float32 row of 89 features while members and validation keys are scored, its share
+# of the lookup tables) over a base of about 0.85 GiB (Python, polars, LightGBM with pandas and
+# scikit-learn, numba, Prefect, the training set). A training sample of 1M non-members instead of
+# 300,000 added 0.64 GiB at 10M keys. Rounded up here, for the estimate informs a refusal: a build
+# is refused only when even this estimate exceeds the memory available. Key length barely counts:
+# 220,000 keys of 112 bytes peaked at 385 MiB against 387 MiB for the same keys of 12 bytes (a
+# build without Prefect), so the estimate counts keys only.
+BUILD_BYTES_PER_KEY = 450
+BUILD_BASE_BYTES = 900 * 2**20
 # Rows of a text source are estimated from the line ends in its first MiB.
 _SAMPLE_BYTES = 1 << 20
 

@@ -306,7 +306,7 @@ def test_a_corpus_too_large_for_memory_is_refused_before_any_key_is_read(tmp_pat
     non = _write_lines(tmp_path / "n.txt", [f"n{i}" for i in range(100)])
     monkeypatch.setenv(MEMORY_LIMIT_ENV, "100M")
     monkeypatch.setattr("pipeline.corpus.read_source", lambda *args: pytest.fail("a key was read"))
-    with pytest.raises(BadInput, match=r"needs about 0\.4 GiB .*more than the 0\.1 GiB of memory available") as raised:
+    with pytest.raises(BadInput, match=r"needs about 0\.9 GiB .*more than the 0\.1 GiB of memory available") as raised:
         load_corpus(members, non, SETTINGS)
     assert str(members) in str(raised.value) and MEMORY_LIMIT_ENV in str(raised.value)
 
