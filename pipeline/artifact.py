@@ -252,6 +252,12 @@ def _decode_header(path: Path, raw: bytes, expected_sum: int) -> dict:
         and isinstance(decoded.get("sections"), list)
     ):
         raise ArtifactError(f"{path}: header must be a map with a 'meta' map and a 'sections' list")
+    try:
+        # msgpack decodes timestamps (extension -1) itself, past the extension hook: hold every
+        # value to the types this format writes
+        canonical_header(decoded)
+    except ValueError as error:
+        raise ArtifactError(f"{path}: {error}") from None
     return decoded
 
 
