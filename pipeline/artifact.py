@@ -37,7 +37,8 @@ import os
 import struct
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Mapping
+from collections.abc import Iterable, Mapping
+from typing import Any
 
 import msgpack
 import numpy as np
@@ -156,7 +157,7 @@ def _chunks(packed: bytes, arrays: dict[str, np.ndarray], table: list[dict]):
         position = entry["offset"] + entry["length"]
 
 
-def _fsync_directory(directory: Path) -> None:
+def fsync_directory(directory: Path) -> None:
     """Make a rename inside directory durable (common practice on POSIX file systems)."""
     fd = os.open(directory, os.O_RDONLY)
     try:
@@ -165,31 +166,33 @@ def _fsync_directory(directory: Path) -> None:
         os.close(fd)
 
 
-def write_artifact(path: str | os.PathLike, header: Mapping[str, Any], sections: Mapping[str, np.ndarray]) -> None:
-    """Write header (plain msgpack-able data) and named numeric sections to path, atomically.
+def write_atomically(path: Path, chunks: Iterable[bytes]) -> None:
+    """Write the chunks to `path` through a temporary file in the same folder, flushed to disk and
+    then renamed over `path`; on any failure the temporary file is removed and `path` is left as it
+    was. The temporary name is random, so writers in other processes never share one."""
+    temporary = path.with_name(f".{path.name}.{os.urandom(8).hex()}.tmp")
+    try:
+        with open(temporary, "xb") as out:
+            for chunk in chunks:
+                out.write(chunk)
+            out.flush()
+            os.fsync(out.fileno())
+        os.replace(temporary, path)
+    except BaseException:
+        temporary.unlink(missing_ok=True)
+        raise
+    fsync_directory(path.parent)
 
-    Sections are written in name order. The bytes go to a temporary file in the same folder, which
-    is flushed to disk and then renamed over path; on any failure the temporary file is removed and
-    path is left as it was.
-    """
+
+def write_artifact(path: str | os.PathLike, header: Mapping[str, Any], sections: Mapping[str, np.ndarray]) -> None:
+    """Write header (plain msgpack-able data) and named numeric sections to path, atomically
+    (`write_atomically`). Sections are written in name order."""
     meta = canonical_header(header)
     arrays = {name: _storable(name, sections[name]) for name in sorted(sections)}
     packed, table = _layout(meta, arrays)
     if len(packed) > MAX_HEADER_BYTES:
         raise ValueError(f"header takes {len(packed)} bytes, more than the {MAX_HEADER_BYTES}-byte limit")
-    target = Path(path)
-    temporary = target.with_name(f".{target.name}.{os.urandom(8).hex()}.tmp")
-    try:
-        with open(temporary, "xb") as out:
-            for chunk in _chunks(packed, arrays, table):
-                out.write(chunk)
-            out.flush()
-            os.fsync(out.fileno())
-        os.replace(temporary, target)
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
-    _fsync_directory(target.parent)
+    write_atomically(Path(path), _chunks(packed, arrays, table))
 
 
 # ---------------------------------------------------------------------------------------------------

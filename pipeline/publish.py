@@ -34,6 +34,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
+from pipeline.artifact import fsync_directory, write_atomically
 from pipeline.errors import BadInput
 
 ARTIFACT_NAME = "artifact.tamis"
@@ -58,14 +59,6 @@ _held_staging: dict[Path, int] = {}
 
 class StoreError(BadInput):
     """A store that cannot be used as asked (a missing version, nothing to roll back to)."""
-
-
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 def is_version_name(name: str) -> bool:
@@ -131,27 +124,12 @@ def current_artifact(store: Path) -> Path | None:
     return None if version is None else store / str(version) / ARTIFACT_NAME
 
 
-def write_atomically(path: Path, data: bytes) -> None:
-    """Write `data` to `path` through a fsynced temporary file and one rename."""
-    temporary = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        with open(temporary, "wb") as handle:
-            handle.write(data)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(temporary, path)
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
-    _fsync_dir(path.parent)
-
-
 def set_current(store: Path, version: int) -> None:
     """Point CURRENT at `version`. Call with the store lock held: temporary files of CURRENT that a
     crashed writer left are removed first (every writer of CURRENT holds the lock)."""
     for stale in store.glob(f".{CURRENT_NAME}.*.tmp"):
         stale.unlink(missing_ok=True)
-    write_atomically(store / CURRENT_NAME, f"{version}\n".encode())
+    write_atomically(store / CURRENT_NAME, [f"{version}\n".encode()])
 
 
 @contextmanager
@@ -253,7 +231,7 @@ def discard_staging(staging: Path) -> None:
 
 
 def write_report(folder: Path, report: dict) -> None:
-    write_atomically(folder / REPORT_NAME, (json.dumps(report, indent=2, sort_keys=True) + "\n").encode())
+    write_atomically(folder / REPORT_NAME, [(json.dumps(report, indent=2, sort_keys=True) + "\n").encode()])
 
 
 def next_version(store: Path) -> int:
@@ -287,10 +265,10 @@ def publish_staging(store: Path, staging: Path, keep: int) -> int:
     target = store / str(version)
     if target.exists() or target.is_symlink():
         _set_aside(target)  # a folder with a version's name but no artifact: not a version
-    _fsync_dir(staging)
+    fsync_directory(staging)
     os.rename(staging, target)
     try:
-        _fsync_dir(store)
+        fsync_directory(store)
         set_current(store, version)
     except BaseException:
         os.rename(target, staging)

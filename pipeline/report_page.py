@@ -23,7 +23,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from pipeline import publish
+from pipeline.artifact import write_atomically
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -338,5 +338,5 @@ def render_report_page(report: dict, scores: ScoreSample) -> str:
 def write_report_page(folder: Path, report: dict, scores: ScoreSample) -> Path:
     """Write `report.html` into `folder` (atomically) and return its path."""
     path = folder / REPORT_PAGE_NAME
-    publish.write_atomically(path, render_report_page(report, scores).encode("utf-8"))
+    write_atomically(path, [render_report_page(report, scores).encode("utf-8")])
     return path
