@@ -229,11 +229,19 @@ def _check_artifact_bytes(total_bytes: int, max_bytes: int) -> GateCheck:
 _CHANGE_OVERRIDE = "or build once with --no-change-limits"
 
 
-def _check_size_growth(total_bytes: int, limit: float, baseline: Baseline | None) -> GateCheck:
+def _change_rule_idle(rule: str, limit: float, baseline: Baseline | None) -> GateCheck | None:
+    """The passing check of a rule on the change against the version in service when it cannot
+    apply: turned off (limit 0), or no version in service; None when it applies."""
     if not limit:
-        return GateCheck("max_size_growth", True, None, None, "off (gate.max_size_growth = 0)")
+        return GateCheck(rule, True, None, None, f"off (gate.{rule} = 0)")
     if baseline is None:
-        return GateCheck("max_size_growth", True, None, None, "no version in service to compare with")
+        return GateCheck(rule, True, None, None, "no version in service to compare with")
+    return None
+
+
+def _check_size_growth(total_bytes: int, limit: float, baseline: Baseline | None) -> GateCheck:
+    if idle := _change_rule_idle("max_size_growth", limit, baseline):
+        return idle
     growth = total_bytes / baseline.total_bytes - 1
     words = (
         f"the artifact has {total_bytes:,} bytes, {growth:+.1%} against version {baseline.version} "
@@ -249,10 +257,8 @@ def _check_size_growth(total_bytes: int, limit: float, baseline: Baseline | None
 
 
 def _check_member_drop(members: int, limit: float, baseline: Baseline | None) -> GateCheck:
-    if not limit:
-        return GateCheck("max_member_drop", True, None, None, "off (gate.max_member_drop = 0)")
-    if baseline is None:
-        return GateCheck("max_member_drop", True, None, None, "no version in service to compare with")
+    if idle := _change_rule_idle("max_member_drop", limit, baseline):
+        return idle
     ratio = members / baseline.members if baseline.members else 1.0
     drop, change = 1 - ratio, ratio - 1
     words = f"{members:,} members against {baseline.members:,} in version {baseline.version} ({change:+.1%})"
