@@ -36,13 +36,13 @@ from pipeline.drift import Drift, measure_drift
 from pipeline.errors import BadInput
 from pipeline.features import default_feature_spec, featurize
 from pipeline.filters import RegionFilter, chunk_words, empty_filters, merge_words
+from pipeline.loader import open_filter
 from pipeline.model import fit_model, fit_model_on_cluster
 from pipeline.package import package_artifact
 from pipeline.progress import Progress, StageEvent, no_progress
 from pipeline.provenance import build_provenance
 from pipeline.regions import plan_regions, region_of
 from pipeline.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
-from pipeline.loader import open_filter
 from pipeline.trees import Forest, score_batch
 
 STAGES = ("corpus", "features", "model", "regions", "filters", "package", "verify", "drift", "report", "publish")
@@ -50,6 +50,9 @@ STAGES = ("corpus", "features", "model", "regions", "filters", "package", "verif
 # Reading the corpus is the stage that touches files other systems write, often on a network
 # filesystem whose hiccups clear within seconds: three more tries over about 40 s, then give up.
 CORPUS_RETRY_DELAYS = (2, 8, 30)
+
+# Seconds to wait for a Dask scheduler to answer before calling its address wrong.
+CLUSTER_CONNECT_SECONDS = 15
 
 # A stage's report of how far it is: (units done, units in all or None, unit name, note).
 Step = Callable[[int, int | None, str, str], None]
@@ -247,8 +250,9 @@ def write_reports(staging: Path, summary: dict, scores: ScoreSample) -> None:
 
 
 def check_inputs(config: BuildConfig) -> None:
-    """The checks that need no reading: the paths are given, both sources open and fit in memory,
-    the store can be written. Cheap, so the CLI runs them before Prefect starts (seconds)."""
+    """The checks that need no reading of keys: the paths are given, both sources open and fit in
+    memory, the store can be written. Cheap, so the CLI runs them before Prefect starts, and a bad
+    path fails in seconds (the flow makes the same checks as it starts)."""
     require_paths(config)
     corpus_stage.check_sources(config.corpus.members, config.corpus.non_members)
     publish.check_store(config.store.path)
@@ -320,8 +324,10 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
     training) and BuildFailed when a stage fails otherwise.
     """
     stages = _Stages(progress or no_progress)
-    check_inputs(config)
+    require_paths(config)
     store = config.store.path
+    publish.check_store(store)  # a store that cannot be used stops the build before any work; the
+    # sources are checked first thing in the corpus stage (load_corpus)
 
     with stages.stage("corpus"):
         corpus = read_corpus(quote(config))
@@ -405,10 +411,6 @@ def flow_for(config: BuildConfig):
     from prefect_dask import DaskTaskRunner
 
     return build_flow.with_options(task_runner=DaskTaskRunner(address=config.compute.cluster))
-
-
-# Seconds to wait for a Dask scheduler to answer before calling its address wrong.
-CLUSTER_CONNECT_SECONDS = 15
 
 
 def check_cluster(address: str) -> None:

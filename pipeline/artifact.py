@@ -35,9 +35,9 @@ import math
 import mmap
 import os
 import struct
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from collections.abc import Iterable, Mapping
 from typing import Any
 
 import msgpack

@@ -243,7 +243,7 @@ class MembershipFilter:
         """Compile (or load from numba's cache) the kernels `contains_many` runs, on empty input of
         the types it passes them, so the first batch does not pay for it; nothing without numba."""
         if compiled.ENABLED:
-            self._scores(PackedKeys(b"", np.zeros(1, dtype=np.int64)).data, np.zeros(1, dtype=np.int64))
+            self._scores(np.zeros(0, dtype=np.uint8), np.zeros(1, dtype=np.int64))
             empty = np.zeros(0, dtype=np.uint64)
             for index in self._bloom_indices:
                 self.regions[index].bloom.query_hashes(KeyHashes(empty, empty))

@@ -442,7 +442,7 @@ def score_batch(forest: Forest, X: np.ndarray) -> np.ndarray:
     """Integer scores (int64, shape (n,)) of the rows of a float32 matrix X of shape (n, d)."""
     _check_matrix(forest, X)
     if compiled.ENABLED and forest.trees:
-        scores = np.full(len(X), forest.bias, dtype=np.int64)
+        scores = np.empty(len(X), dtype=np.int64)  # the kernel writes bias + leaf sum into every row
         compiled.score_rows(np.ascontiguousarray(X), *forest._levels.kernel_arrays, forest.bias, scores)
         return scores
     scores = np.empty(len(X), dtype=np.int64)
