@@ -69,7 +69,7 @@ _OPEN_PROBLEMS = {
 # (keys of about 12 bytes, default settings, numba, 300,000 training non-members): 1M keys peaked at
 # 1.28 GiB, 3M at 2.02 GiB and 10M at 4.85 GiB, a slope of about 426 bytes a key (its bytes
 # objects, its float32 row of 89 features while members and validation keys are scored, its share
-# of the lookup tables) over a base of about 0.85 GiB (Python, polars, LightGBM with pandas and
+# of the lookup tables) over a base of about 0.88 GiB (Python, polars, LightGBM with pandas and
 # scikit-learn, numba, Prefect, the training set). A training sample of 1M non-members instead of
 # 300,000 added 0.64 GiB at 10M keys. Rounded up here, for the estimate informs a refusal: a build
 # is refused only when even this estimate exceeds the memory available. Key length barely counts:
