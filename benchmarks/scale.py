@@ -45,8 +45,9 @@ class Run:
     report: dict
 
 
-def write_config(folder: Path, members: Path, lookups: Path, train_sample: int | None) -> Path:
-    """The demo defaults (pipeline's embedded configs/demo.toml) with this corpus and a fresh store."""
+def write_config(folder: Path, members: Path, lookups: Path, train_sample: int | None) -> tuple[Path, Path]:
+    """The demo defaults (pipeline's embedded configs/demo.toml) with this corpus and a fresh store:
+    the config's path and the store's."""
     demo = (Path(__file__).resolve().parents[1] / "configs" / "demo.toml").read_text()
     model = f"\n[model]\ntrain_nonmembers = {train_sample}\n" if train_sample else ""
     store = folder / f"store-{train_sample or 'default'}"
@@ -56,7 +57,7 @@ def write_config(folder: Path, members: Path, lookups: Path, train_sample: int |
         .replace("[store]\n", f'[store]\npath = "{store}"\n', 1)
         + model
     )
-    return config
+    return config, store
 
 
 def build(config: Path) -> tuple[float, int]:
@@ -84,9 +85,8 @@ def measure(folder: Path, members: int, non_members: int, train_samples: list[in
     print(f"# corpus {members:,} + {non_members:,} written in {time.perf_counter() - started:.0f} s", file=sys.stderr)
     runs = []
     for sample in train_samples:
-        config = write_config(folder, members_path, lookups_path, sample)
+        config, store = write_config(folder, members_path, lookups_path, sample)
         seconds, peak = build(config)
-        store = folder / f"store-{sample or 'default'}"
         report = build_report(store)
         runs.append(Run(members, non_members, sample, seconds, peak, report))
         print(f"# built {members:,} + {non_members:,} (train sample {sample or 'default'}) in {seconds:.0f} s", file=sys.stderr)
