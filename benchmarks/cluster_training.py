@@ -3,7 +3,7 @@
 Run: .venv/bin/python benchmarks/cluster_training.py [--members 50000] [--non-members 500000] [--repeat 3]
 
 Builds an Emberfall demo corpus (pipeline.demo, seeded), featurizes it once (half the non-members
-train, half validate), then trains the default model grid (pipeline.model.ModelSettings) --repeat
+train, half validate), then trains the default model grid (tamis.model.ModelSettings) --repeat
 times with `fit_model` (LightGBM, 2 threads) and with `fit_model_on_cluster` (LightGBM's Dask
 interface, a LocalCluster of 2 worker processes of 1 thread each), alternating. It prints each
 path's wall seconds (median, and its ratio to the local median of the same run), the totals it
@@ -25,10 +25,10 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from distributed import Client, LocalCluster  # noqa: E402
 
-from pipeline.demo import generate_demo_corpus  # noqa: E402
-from pipeline.features import default_feature_spec, featurize  # noqa: E402
-from pipeline.model import ModelSettings, fit_model, fit_model_on_cluster  # noqa: E402
-from pipeline.regions import RegionSettings, plan_regions  # noqa: E402
+from tamis.demo import generate_demo_corpus  # noqa: E402
+from tamis.features import default_feature_spec, featurize  # noqa: E402
+from tamis.model import ModelSettings, fit_model, fit_model_on_cluster  # noqa: E402
+from tamis.regions import RegionSettings, plan_regions  # noqa: E402
 
 TARGET_FPR = 0.01
 

@@ -3,7 +3,7 @@
 Run: .venv/bin/python benchmarks/compare_filters.py [--quick] [--targets 0.001,0.01,0.05]
          [--corpus demo,words,words-by-key] [--demo-members 200000] [--demo-non-members 2000000]
 
-Corpora. `demo` is the Emberfall demo (`pipeline.demo.write_demo_corpus`, by default the full
+Corpora. `demo` is the Emberfall demo (`tamis.demo.write_demo_corpus`, by default the full
 200,000 members and 2,000,000 looked-up handles). `words` is the open word corpus of
 `benchmarks/word_corpus.py`: English words against the words of eight other languages, with their
 occurrence counts as lookup counts (needs the `bench` extra). Those counts have a very heavy head
@@ -14,15 +14,15 @@ counts, every distinct word one lookup: about 460,000 held-out words, plenty for
 uses the demo's build config (`configs/demo.toml`) apart from the target.
 
 Each corpus goes through the pipeline's own stage functions in this process (the bodies of the
-build flow's tasks in `flows.build`): the corpus stage with its hash split, and the features stage
+build flow's tasks in `tamis.flows.build`): the corpus stage with its hash split, and the features stage
 once per corpus, its matrices shared by every target. Then, per target F:
 
-(a) plain Bloom: one Bloom filter of all members at F (`pipeline.bloom`); its bytes are its bit array.
+(a) plain Bloom: one Bloom filter of all members at F (`tamis.bloom`); its bytes are its bit array.
 (b) one threshold: the chosen model with one score threshold; members below it go into one backup
-    Bloom filter, keys at or above it answer yes (`pipeline.baselines.plan_single_threshold`); the
+    Bloom filter, keys at or above it answer yes (`tamis.baselines.plan_single_threshold`); the
     threshold and the split of F between the two parts are chosen on the validation non-members,
     and it is packaged as an artifact with the same compiled model, so it pays the same model bytes.
-(c) full: the artifact as the build flow makes it: aim below F (`pipeline.verify.aim_fpr`), the
+(c) full: the artifact as the build flow makes it: aim below F (`tamis.verify.aim_fpr`), the
     model chosen by bytes at the aim, regions, filters, package.
 
 All are measured on the held-out non-members (never used for training or any choice), by lookups
@@ -41,7 +41,7 @@ therefore compare at F*, the full artifact's measured held-out rate:
   estimate too), so it is built at 17 planned rates from F*/4 to 4 F* and the smallest whose
   measured rate is at most F* is taken. Choosing on the held-out keys can only flatter this baseline;
 - ideal at F*: n (log2(1/F*) - D) / ln 2 / 8 + model bytes with D the divergence of the full
-  artifact's regions (`pipeline.baselines.ideal_bytes`), and beside it the reachable version, the
+  artifact's regions (`tamis.baselines.ideal_bytes`), and beside it the reachable version, the
   same regions with their budgets capped at 1 (`clamped_ideal_bytes`): the formula credits a region
   whose budget would exceed 1 with savings no filter can make.
 Table 1 prints the raw figures at the target, table 3 what explains the sizes (the model's AUC and
@@ -70,7 +70,7 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 
-from flows.build import (
+from tamis.flows.build import (
     choose_regions,
     extract_features,
     fill_filters,
@@ -80,23 +80,23 @@ from flows.build import (
     verify_package,
     write_package,
 )
-from pipeline import verify
-from pipeline.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
-from pipeline.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys, word_count
-from pipeline.config import BuildConfig, load_config, with_overrides
-from pipeline.corpus import Corpus, KeySet, sample_keys
-from pipeline.demo import write_demo_corpus
-from pipeline.errors import BadInput
-from pipeline.features import default_feature_spec, featurize
-from pipeline.regions import kl_divergence_bits, region_of, segment_edges, segment_shares
-from pipeline.trees import score_batch
+from tamis import verify
+from tamis.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
+from tamis.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys, word_count
+from tamis.config import BuildConfig, load_config, with_overrides
+from tamis.corpus import Corpus, KeySet, sample_keys
+from tamis.demo import write_demo_corpus
+from tamis.errors import BadInput
+from tamis.features import default_feature_spec, featurize
+from tamis.regions import kl_divergence_bits, region_of, segment_edges, segment_shares
+from tamis.trees import score_batch
 
 import word_corpus  # benchmarks/word_corpus.py: this script's folder is on sys.path when it runs
 
 CORPORA = ("demo", "words", "words-by-key")
 DEFAULT_TARGETS = (0.001, 0.01, 0.05)
 # every corpus is built with the demo's config (as `tamis demo` does), only the target changes
-DEMO_CONFIG = resources.files("configs") / "demo.toml"
+DEMO_CONFIG = resources.files("tamis.configs") / "demo.toml"
 # --quick: a demo of this size trains in seconds; the word corpora keep their size (they are what
 # they are) but train the small model grid below.
 QUICK_DEMO = (20_000, 200_000)

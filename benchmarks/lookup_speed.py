@@ -9,14 +9,14 @@ the one to measure. Then, in one run, it prints:
 
 1. batch `contains_many` of --keys keys (held-out non-members and members, shuffled, as str) in keys/s;
 2. single-key `contains`, p50 and p99 latency;
-3. the same keys through a plain Bloom filter (`pipeline.bloom`) holding the same members at the
+3. the same keys through a plain Bloom filter (`tamis.bloom`) holding the same members at the
    same target false-positive rate: the baseline every figure is divided by;
 4. the batch profile: packing, features, trees, hashing and probes, each on its own;
 5. the curve of artifact bytes against batch lookup speed over the budgets;
 6. the cost of opening the artifact in a fresh process, with numba's cache cold and warm.
 
 Figures 1, 2, 4 and 5 are given for the plain numpy path and, when numba is installed, for the
-compiled path (`pipeline.compiled`), side by side in the same run; both give the same answers,
+compiled path (`tamis.compiled`), side by side in the same run; both give the same answers,
 which the run checks.
 
 Every time is given as CPU seconds of this process (time.process_time) and as wall seconds: on a
@@ -38,18 +38,18 @@ from pathlib import Path
 
 import numpy as np
 
-from pipeline import compiled
-from pipeline.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_slices
-from pipeline.config import load_config
-from pipeline.corpus import load_corpus
-from pipeline.demo import write_demo_corpus
-from pipeline.features import default_feature_spec, featurize, featurize_columns
-from pipeline.filters import build_filters
-from pipeline.loader import MembershipFilter, PackedKeys, open_filter, pack_batch
-from pipeline.model import fit_model
-from pipeline.package import package_artifact
-from pipeline.regions import plan_regions, region_of
-from pipeline.trees import score_batch, score_columns
+from tamis import compiled
+from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_slices
+from tamis.config import load_config
+from tamis.corpus import load_corpus
+from tamis.demo import write_demo_corpus
+from tamis.features import default_feature_spec, featurize, featurize_columns
+from tamis.filters import build_filters
+from tamis.loader import MembershipFilter, PackedKeys, open_filter, pack_batch
+from tamis.model import fit_model
+from tamis.package import package_artifact
+from tamis.regions import plan_regions, region_of
+from tamis.trees import score_batch, score_columns
 
 DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.toml"
 # Single-key latencies are sampled over this many keys (enough for a stable p99).
@@ -174,7 +174,7 @@ def open_seconds(path: Path, cache: Path | None) -> float:
     """Wall seconds of `open_filter` in a fresh process (imports not counted), numba's cache in
     `cache` (an empty folder: a cold compile) or where numba keeps it (None)."""
     env = dict(os.environ, **({"NUMBA_CACHE_DIR": str(cache)} if cache else {}))
-    code = ("import sys, time; from pipeline.loader import open_filter; t = time.perf_counter(); "
+    code = ("import sys, time; from tamis.loader import open_filter; t = time.perf_counter(); "
             "open_filter(sys.argv[1]); print(time.perf_counter() - t)")
     done = subprocess.run([sys.executable, "-c", code, str(path)], env=env, capture_output=True, text=True, check=True)
     return float(done.stdout)

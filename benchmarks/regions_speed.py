@@ -24,8 +24,8 @@ import time
 
 import numpy as np
 
-from pipeline.bloom import bloom_bits
-from pipeline.regions import (
+from tamis.bloom import bloom_bits
+from tamis.regions import (
     RegionSettings,
     best_partitions,
     kl_divergence_bits,

@@ -28,8 +28,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from flows.build import STAGES  # noqa: E402
-from pipeline.demo import write_demo_corpus  # noqa: E402
+from tamis.flows.build import STAGES  # noqa: E402
+from tamis.demo import write_demo_corpus  # noqa: E402
 
 TAMIS = [str(Path(sys.executable).with_name("tamis"))]
 GIB = 2**30

@@ -1,1 +1,1 @@
-"""Prefect flows that run the pipeline's stages in order (`flows.build.build_flow`)."""
+"""Prefect flows that run the pipeline's stages in order (`tamis.flows.build.build_flow`)."""

@@ -1,7 +1,7 @@
 """The build flow: every stage of the pipeline as a Prefect task, in order.
 
 The stage functions live in `pipeline/` and know nothing of Prefect; this module wires them, times
-them, reports progress (`pipeline.progress.StageEvent`) and decides what the store does with the
+them, reports progress (`tamis.progress.StageEvent`) and decides what the store does with the
 result. A stage that raises ends the build: BadInput passes through unchanged (the CLI's exit 2),
 anything else becomes BuildFailed naming the stage. Either way nothing is published and the
 build's staging folder is removed.
@@ -29,21 +29,21 @@ from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
-from pipeline import corpus as corpus_stage
-from pipeline import publish, report, verify
-from pipeline.config import BuildConfig, require_paths
-from pipeline.drift import Drift, measure_drift
-from pipeline.errors import BadInput
-from pipeline.features import default_feature_spec, featurize
-from pipeline.filters import RegionFilter, chunk_words, empty_filters, merge_words
-from pipeline.loader import open_filter
-from pipeline.model import fit_model, fit_model_on_cluster
-from pipeline.package import package_artifact
-from pipeline.progress import Progress, StageEvent, no_progress
-from pipeline.provenance import build_provenance
-from pipeline.regions import plan_regions, region_of
-from pipeline.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
-from pipeline.trees import Forest, score_batch
+from tamis import corpus as corpus_stage
+from tamis import publish, report, verify
+from tamis.config import BuildConfig, require_paths
+from tamis.drift import Drift, measure_drift
+from tamis.errors import BadInput
+from tamis.features import default_feature_spec, featurize
+from tamis.filters import RegionFilter, chunk_words, empty_filters, merge_words
+from tamis.loader import open_filter
+from tamis.model import fit_model, fit_model_on_cluster
+from tamis.package import package_artifact
+from tamis.progress import Progress, StageEvent, no_progress
+from tamis.provenance import build_provenance
+from tamis.regions import plan_regions, region_of
+from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
+from tamis.trees import Forest, score_batch
 
 STAGES = ("corpus", "features", "model", "regions", "filters", "package", "verify", "drift", "report", "publish")
 

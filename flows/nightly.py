@@ -54,15 +54,15 @@ from prefect.settings import PREFECT_API_URL, get_current_settings, temporary_se
 from prefect.states import Failed, State
 from prefect.types.entrypoint import EntrypointType
 
-from flows.build import BuildOutcome, flow_for
-from pipeline.config import BuildConfig, ConfigError, load_config, require_paths
-from pipeline.errors import BadInput
-from pipeline.progress import StageEvent
+from tamis.flows.build import BuildOutcome, flow_for
+from tamis.config import BuildConfig, ConfigError, load_config, require_paths
+from tamis.errors import BadInput
+from tamis.progress import StageEvent
 
 FLOW_NAME = "tamis-nightly"
 
 # `prefect server start` is healthy after 5 to 15 s here; a first start on a fresh PREFECT_HOME also
-# creates its database, which the ephemeral-server setting of 120 s (pipeline.cli) allows for too.
+# creates its database, which the ephemeral-server setting of 120 s (tamis.cli) allows for too.
 SERVER_STARTUP_SECONDS = 120.0
 # How often the startup wait asks /api/health: fine enough that the wait adds little to the start.
 HEALTH_POLL_SECONDS = 0.5

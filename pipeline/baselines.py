@@ -12,12 +12,12 @@ fewest backup bits. In region terms it is a plan of two regions, [-inf, t) with 
 f_b and [t, +inf) answering yes, so the filters and package stages build it unchanged.
 
 Ideal size: with k regions of divergence D = sum_i G_i log2(G_i / H_i) and unclamped KKT budgets
-(see `pipeline.regions`), the backup filters need n (log2(1/F) - D) bits at the information-
+(see `tamis.regions`), the backup filters need n (log2(1/F) - D) bits at the information-
 theoretic limit, times 1/ln 2 for Bloom filters; `ideal_bytes` adds the model's bytes to that. The
 formula counts a region whose budget c G_i / H_i exceeds 1 as saving bits beyond answering yes, which
 no filter can do, so when a budget clamps at 1 it is below what any filter on those regions reaches.
 `clamped_ideal_bytes` is the reachable one: sum_i n_i log2(1 / f_i) / ln 2 with the KKT budgets
-f_i = min(1, c G_i / H_i) (`pipeline.regions.allocate_fprs`), plus the model.
+f_i = min(1, c G_i / H_i) (`tamis.regions.allocate_fprs`), plus the model.
 """
 
 from __future__ import annotations
@@ -27,8 +27,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline.bloom import BLOOM_OVERHEAD, LN2, bloom_bits
-from pipeline.regions import allocate_fprs
+from tamis.bloom import BLOOM_OVERHEAD, LN2, bloom_bits
+from tamis.regions import allocate_fprs
 
 
 @dataclass(frozen=True)

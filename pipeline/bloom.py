@@ -5,7 +5,7 @@ and the standard analysis that follows it; positions by enhanced double hashing 
 and P. Manolios, "Bloom filters in probabilistic verification", FMCAD 2004.
 
 The formulas here are estimates: they size filters and drive the region plan. The false-positive
-rate a user is promised is always the one measured on held-out non-members (see `pipeline.verify`).
+rate a user is promised is always the one measured on held-out non-members (see `tamis.verify`).
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ from typing import Sequence
 import numpy as np
 import xxhash
 
-from pipeline import compiled
+from tamis import compiled
 
 LN2 = math.log(2.0)
 

@@ -16,8 +16,8 @@ import traceback
 from importlib import resources
 from pathlib import Path
 
-from pipeline import publish
-from pipeline.errors import BadInput
+from tamis import publish
+from tamis.errors import BadInput
 
 EXIT_PUBLISHED, EXIT_REFUSED, EXIT_BAD_INPUT, EXIT_FAILED = 0, 1, 2, 3
 
@@ -40,13 +40,13 @@ def _prepare_prefect(defaults: dict[str, str] = PREFECT_DEFAULTS) -> None:
 
 
 def _demo_config_path() -> Path:
-    return Path(str(resources.files("configs") / "demo.toml"))
+    return Path(str(resources.files("tamis.configs") / "demo.toml"))
 
 
 def _run_build(config) -> int:
     _prepare_prefect(PREFECT_BUILD_DEFAULTS)
-    from flows.build import BuildFailed, check_inputs, flow_for
-    from pipeline.progress import progress_display
+    from tamis.flows.build import BuildFailed, check_inputs, flow_for
+    from tamis.progress import progress_display
 
     started = time.perf_counter()
     check_inputs(config)  # bad paths fail in a second, before Prefect starts its server
@@ -109,8 +109,8 @@ def summary_text(report: dict, folder: Path) -> str:
 
 
 def cmd_demo(args) -> int:
-    from pipeline.config import load_config, with_overrides
-    from pipeline.demo import write_demo_corpus
+    from tamis.config import load_config, with_overrides
+    from tamis.demo import write_demo_corpus
 
     directory = Path(args.dir).resolve()
     directory.mkdir(parents=True, exist_ok=True)
@@ -127,7 +127,7 @@ def cmd_demo(args) -> int:
 
 
 def cmd_build(args) -> int:
-    from pipeline.config import BuildConfig, load_config, with_overrides
+    from tamis.config import BuildConfig, load_config, with_overrides
 
     config = load_config(Path(args.config)) if args.config else BuildConfig()
     config = with_overrides(
@@ -157,7 +157,7 @@ def _artifact_path(given: str) -> Path:
 
 
 def _open(given: str):
-    from pipeline.loader import FilterLoadError, open_filter
+    from tamis.loader import FilterLoadError, open_filter
 
     try:
         return open_filter(_artifact_path(given))
@@ -209,7 +209,7 @@ def show_text(path: Path, info: dict) -> str:
             f"  measured on {measured['keys']:,} held-out keys: FPR {measured['fpr']:.4%} (upper bound {measured['fpr_upper']:.4%} at {measured['confidence']:.0%})"
         )
     text = "\n".join(lines) + "\n" + report_text(path.with_name(publish.REPORT_NAME))
-    from pipeline.report_page import REPORT_PAGE_NAME
+    from tamis.report_page import REPORT_PAGE_NAME
 
     page = path.with_name(REPORT_PAGE_NAME)
     if page.is_file():
@@ -242,7 +242,7 @@ def cmd_versions(args) -> int:
 
 def cmd_schedule(args) -> int:
     _prepare_prefect()
-    from flows.nightly import main_schedule
+    from tamis.flows.nightly import main_schedule
 
     return main_schedule(Path(args.config))
 

@@ -1,8 +1,8 @@
 """Compiled kernels (numba) for the hot loops of features, trees and Bloom probes: optional.
 
 Each kernel computes exactly what its numpy counterpart computes, one key at a time in one pass
-instead of one numpy pass per quantity: `pipeline.features.featurize_columns`,
-`pipeline.trees.score_columns` and `pipeline.bloom.BloomFilter.query_hashes` call them when
+instead of one numpy pass per quantity: `tamis.features.featurize_columns`,
+`tamis.trees.score_columns` and `tamis.bloom.BloomFilter.query_hashes` call them when
 `ENABLED`, and the loader fuses features and trees per key so a key's feature row never leaves
 the CPU's first-level cache. The values are bit-identical to the numpy path: integer counts,
 one float64 division rounded once to float32, the same float32 comparisons, integer sums and
@@ -40,12 +40,12 @@ ENABLED = _NUMBA is not None
 if ENABLED:
     _jit = _NUMBA.njit(cache=True, nogil=True, boundscheck=False)
 
-    # Column layout (pipeline.features docstring): length, 6 class counts, 5 shares, vowels,
+    # Column layout (tamis.features docstring): length, 6 class counts, 5 shares, vowels,
     # distinct, runs, digit_runs, longest, lead, tail digits, class first/last, first/last byte,
     # prefix2, suffix2, then the bigram and trigram buckets.
     _GOLDEN32 = np.uint64(2654435761)
     _MASK32 = np.uint64(0xFFFFFFFF)
-    _DIGIT = 2  # class code of the digits, pipeline.features._DIGIT
+    _DIGIT = 2  # class code of the digits, tamis.features._DIGIT
     _CLASSES = 6
     # Keys per block: a block's rows (d float32 each) are turned into columns (d, n) in
     # one go, so a key touches one cache line per feature per block instead of one per feature.
@@ -142,7 +142,7 @@ if ENABLED:
     @_jit
     def _leaf_sum(x, roots, feature, threshold, first_child, value):
         """Sum of the leaf values one feature row x reaches, over the breadth-first layout of
-        pipeline.trees: the children of a node are adjacent, and a leaf is its own first child."""
+        tamis.trees: the children of a node are adjacent, and a leaf is its own first child."""
         total = np.int64(0)
         for t in range(len(roots)):
             node = roots[t]
@@ -172,7 +172,7 @@ if ENABLED:
     @_jit
     def bloom_query(low, high, bits, probes, words, answers):
         """answers[i] = every probe bit of key i is set; positions by enhanced double hashing
-        modulo bits, exactly as pipeline.bloom.probe_positions computes them (all in uint64)."""
+        modulo bits, exactly as tamis.bloom.probe_positions computes them (all in uint64)."""
         m = np.uint64(bits)
         for i in range(len(low)):
             x = low[i] % m

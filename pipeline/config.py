@@ -5,8 +5,8 @@ A config file has these tables (every key optional unless marked; `configs/demo.
     [corpus]   members*, non_members* (paths, relative to the config file), key_encoding, max_key_bytes,
                conflicts, split_seed, validation_share, heldout_share
     [target]   fpr*
-    [model]    the fields of pipeline.model.ModelSettings
-    [regions]  the fields of pipeline.regions.RegionSettings
+    [model]    the fields of tamis.model.ModelSettings
+    [regions]  the fields of tamis.regions.RegionSettings
     [filters]  hash_seed
     [gate]     the fields of GateSettings
     [store]    path*, keep
@@ -27,9 +27,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pipeline.errors import BadInput
-from pipeline.model import ModelSettings
-from pipeline.regions import RegionSettings
+from tamis.errors import BadInput
+from tamis.model import ModelSettings
+from tamis.regions import RegionSettings
 
 
 class ConfigError(BadInput):
@@ -77,7 +77,7 @@ class GateSettings:
     aim_sigmas: float = field(default=2.0, metadata={"range": (0.0, 10.0)})
     # rule min_heldout, checked before training: the held-out part must carry at least this many
     # draws (its effective sample size when the corpus has counts), and never fewer than the target
-    # needs to be bounded at all (pipeline.verify.needed_heldout); 0 asks for no more than that
+    # needs to be bounded at all (tamis.verify.needed_heldout); 0 asks for no more than that
     min_heldout: int = field(default=0, metadata={"range": (0, 1 << 40)})
     # rule max_artifact_bytes: the largest artifact file accepted
     max_artifact_bytes: int = field(default=0, metadata={"range": (0, 1 << 40)})

@@ -37,9 +37,9 @@ import numpy as np
 import polars as pl
 import xxhash
 
-from pipeline.config import CorpusSettings
-from pipeline.errors import BadInput
-from pipeline.model import training_sample
+from tamis.config import CorpusSettings
+from tamis.errors import BadInput
+from tamis.model import training_sample
 
 TABLE_SUFFIXES = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".ndjson": "ndjson", ".jsonl": "ndjson"}
 
@@ -463,7 +463,7 @@ def _subset(keys: list[bytes], counts: np.ndarray, mask: np.ndarray) -> KeySet:
 
 def sample_keys(keys: KeySet, size: int, seed: int) -> KeySet:
     """At most `size` of the keys, in their order: the sample the model stage would draw from their
-    feature rows (`pipeline.model.training_sample`), drawn before any feature is computed."""
+    feature rows (`tamis.model.training_sample`), drawn before any feature is computed."""
     if len(keys.keys) <= size:
         return keys
     pick = training_sample(len(keys.keys), size, seed)

@@ -17,11 +17,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from pipeline import publish
-from pipeline.artifact import ArtifactError
-from pipeline.corpus import KeySet
-from pipeline.loader import open_filter
-from pipeline.verify import Baseline, Measurement, check_filter
+from tamis import publish
+from tamis.artifact import ArtifactError
+from tamis.corpus import KeySet
+from tamis.loader import open_filter
+from tamis.verify import Baseline, Measurement, check_filter
 
 
 @dataclass(frozen=True)

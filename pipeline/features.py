@@ -28,7 +28,7 @@ An empty key has every feature 0.
 Two implementations compute the same values: `featurize_packed` (and `featurize` on a list) works
 on a whole batch with numpy, one pass per quantity over all bytes of a chunk of keys, with no Python
 per key; `featurize_one` is plain Python for a single key, where array set-up would dominate. When
-numba is installed, the batch functions run `pipeline.compiled.featurize_into` instead: one pass per
+numba is installed, the batch functions run `tamis.compiled.featurize_into` instead: one pass per
 key, the same values bit for bit.
 """
 
@@ -42,7 +42,7 @@ from itertools import groupby
 
 import numpy as np
 
-from pipeline import compiled
+from tamis import compiled
 
 FEATURES_VERSION = 1
 
@@ -131,7 +131,7 @@ class FeatureLayout:
 
     @cached_property
     def kernel_tables(self) -> tuple[np.ndarray, ...]:
-        """The arguments `pipeline.compiled` kernels take for this layout: the class, fold and
+        """The arguments `tamis.compiled` kernels take for this layout: the class, fold and
         vowel tables (256 entries each) and [bigram shift, trigram shift, affix shift, column of
         the first bigram bucket, column of the first trigram bucket]."""
         is_vowel = np.zeros(256, dtype=np.uint8)
@@ -274,7 +274,7 @@ def featurize_packed(data: np.ndarray, offsets: np.ndarray, spec: Mapping | Feat
 
 def featurize_columns(data: np.ndarray, offsets: np.ndarray, spec: Mapping | FeatureLayout) -> np.ndarray:
     """The transpose of `featurize_packed`: float32 of shape (d, n), one contiguous row per feature
-    (the layout `pipeline.trees.score_columns` reads, and the one numpy fills fastest)."""
+    (the layout `tamis.trees.score_columns` reads, and the one numpy fills fastest)."""
     layout = feature_layout(spec)
     check_packed(data, offsets)
     n = len(offsets) - 1

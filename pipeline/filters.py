@@ -18,7 +18,7 @@ from typing import Literal
 
 import numpy as np
 
-from pipeline.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
+from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
 
 FilterMode = Literal["bloom", "yes", "no"]
 FILTER_MODES = ("bloom", "yes", "no")

@@ -1,13 +1,13 @@
 """Loader: open an artifact and answer membership queries, with numpy, xxhash and msgpack only.
 
-    from pipeline.loader import open_filter
+    from tamis.loader import open_filter
     bans = open_filter("store/7/artifact.tamis")
     bans.contains("frost_wyrm_1984")            # True: maybe banned; False: surely not
     bans.contains_many(["a", b"b"])             # numpy bool array, in input order
     bans.contains_many(frame["handle"])         # a polars String or Binary column works too
 
-A key is answered the way the build inserted it: features (`pipeline.features`) -> integer score
-(`pipeline.trees`) -> region by the integer boundaries (`pipeline.regions.region_of`) -> that region's
+A key is answered the way the build inserted it: features (`tamis.features`) -> integer score
+(`tamis.trees`) -> region by the integer boundaries (`tamis.regions.region_of`) -> that region's
 filter ("yes", "no", or a Bloom filter). Every check runs when the file is opened; any file that
 cannot be used raises FilterLoadError, and nothing stored in it is ever executed.
 
@@ -33,14 +33,14 @@ from typing import Any, Iterable, Literal, Sequence
 
 import numpy as np
 
-from pipeline import compiled
-from pipeline.artifact import ArtifactError, load_artifact
-from pipeline.bloom import BloomFilter, KeyHashes, hash_slices
-from pipeline.features import FeatureLayout, feature_layout, featurize_columns, featurize_one
-from pipeline.filters import FILTER_MODES
-from pipeline.package import HASHING, HEADER_KIND
-from pipeline.regions import region_of
-from pipeline.trees import Forest, score_columns, score_values
+from tamis import compiled
+from tamis.artifact import ArtifactError, load_artifact
+from tamis.bloom import BloomFilter, KeyHashes, hash_slices
+from tamis.features import FeatureLayout, feature_layout, featurize_columns, featurize_one
+from tamis.filters import FILTER_MODES
+from tamis.package import HASHING, HEADER_KIND
+from tamis.regions import region_of
+from tamis.trees import Forest, score_columns, score_values
 
 LOG = logging.getLogger(__name__)
 
@@ -382,7 +382,7 @@ def _open_checked(path: Path) -> MembershipFilter:
 
 
 def open_filter(path: str | os.PathLike, on_error: OnError = "raise") -> MembershipFilter | DegradedFilter:
-    """Open an artifact written by `pipeline.package.package_artifact`.
+    """Open an artifact written by `tamis.package.package_artifact`.
 
     on_error="raise" (the default): raise FilterLoadError if the file is unusable.
     on_error="maybe": return a `DegradedFilter` instead, which answers True for every key, after

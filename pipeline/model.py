@@ -10,7 +10,7 @@ checkpoint its prefix is compiled and priced, and the cheapest prefix of all can
 On a Dask cluster (`fit_model_on_cluster`), LightGBM's Dask interface trains each candidate up to
 its tree cap and the same pricing walks its prefixes; dask is imported only there.
 
-Compilation turns LightGBM's trees (`Booster.dump_model()`) into a `pipeline.trees.Forest`:
+Compilation turns LightGBM's trees (`Booster.dump_model()`) into a `tamis.trees.Forest`:
 thresholds snapped to float32, leaf values quantised to integers.
 """
 
@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 import lightgbm as lgb
 import numpy as np
 
-from pipeline.trees import (
+from tamis.trees import (
     CHILD_DTYPES,
     INT32_LIMIT,
     MAX_TREE_LEAVES,

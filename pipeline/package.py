@@ -1,10 +1,10 @@
 """Package stage: the feature spec, the compiled forest, the regions and their filters in one artifact.
 
-Header (the container's meta map, see `pipeline.artifact`):
+Header (the container's meta map, see `tamis.artifact`):
 
     kind          "membership-filter"
     provenance    whatever the build records (build time, input digests, tool version, ...)
-    feature_spec  the spec `pipeline.features.featurize` runs with
+    feature_spec  the spec `tamis.features.featurize` runs with
     forest        `Forest.meta()`; the forest's arrays are the "forest.*" sections
     boundaries    k - 1 ascending integer scores; region i holds boundaries[i-1] <= s < boundaries[i]
     regions       k maps {mode, bits, hashes, members, fpr_budget, section}; section names the
@@ -22,13 +22,13 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from pipeline.artifact import write_artifact
-from pipeline.bloom import check_seed
-from pipeline.filters import RegionFilter
-from pipeline.trees import Forest
+from tamis.artifact import write_artifact
+from tamis.bloom import check_seed
+from tamis.filters import RegionFilter
+from tamis.trees import Forest
 
 HEADER_KIND = "membership-filter"
-# Fixed descriptions of the hashing scheme of `pipeline.bloom`; a loader refuses any other.
+# Fixed descriptions of the hashing scheme of `tamis.bloom`; a loader refuses any other.
 HASHING = {"function": "xxh3_128", "positions": "enhanced-double-hashing", "bit_order": "lsb0-u64-le"}
 INT64_RANGE = (-(2**63), 2**63 - 1)
 

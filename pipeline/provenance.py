@@ -15,8 +15,8 @@ from pathlib import Path
 
 import xxhash
 
-from pipeline.config import BuildConfig
-from pipeline.corpus import Corpus
+from tamis.config import BuildConfig
+from tamis.corpus import Corpus
 
 
 def tool_version() -> str:

@@ -34,8 +34,8 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
-from pipeline.artifact import fsync_directory, write_atomically
-from pipeline.errors import BadInput
+from tamis.artifact import fsync_directory, write_atomically
+from tamis.errors import BadInput
 
 ARTIFACT_NAME = "artifact.tamis"
 REPORT_NAME = "report.json"

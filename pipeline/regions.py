@@ -21,7 +21,7 @@ with the fewest total bytes (backup filters plus a fixed cost per region).
 Boundaries are integer scores: region i holds the scores s with boundaries[i-1] <= s < boundaries[i];
 the first region reaches down to -inf and the last up to +inf, so every key lands in some region,
 whatever its score. `region_of` is that rule; the loader imports it, so this module uses only numpy,
-the standard library and `pipeline.bloom`.
+the standard library and `tamis.bloom`.
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline.bloom import bloom_bits
+from tamis.bloom import bloom_bits
 
 # The dynamic programme sweeps the (start, end) table in blocks of end columns. A block holds about
 # this many cells (16 MiB per float64 temporary), which keeps memory flat at N = 10,000 segments
@@ -78,7 +78,7 @@ class RegionPlan:
     nonmember_shares: float64 (k,), H_i = share of validation non-member lookups in region i.
     kl_bits: D = sum_i G_i log2(G_i / H_i), the divergence the regions achieve, in bits.
     estimated_filter_bits: sum over regions of the optimal Bloom filter bits for their members at
-        their budgets (`pipeline.bloom.bloom_bits`).
+        their budgets (`tamis.bloom.bloom_bits`).
     estimated_total_bits: estimated_filter_bits plus k region overheads, the quantity k minimises.
     expected_fpr: sum_i H_i f_i, the false-positive rate predicted on validation lookups, <= target.
     segments: how many segments the regions were grouped from (after ties collapsed some).

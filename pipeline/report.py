@@ -6,11 +6,11 @@ from __future__ import annotations
 
 import math
 
-from pipeline.bloom import bloom_bits, lower_bound_bits
-from pipeline.config import BuildConfig
-from pipeline.corpus import Corpus
-from pipeline.drift import Drift
-from pipeline.verify import GateCheck, Verification, refusal_reasons
+from tamis.bloom import bloom_bits, lower_bound_bits
+from tamis.config import BuildConfig
+from tamis.corpus import Corpus
+from tamis.drift import Drift
+from tamis.verify import GateCheck, Verification, refusal_reasons
 
 
 def _region_rows(plan, filters) -> list[dict]:

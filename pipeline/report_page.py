@@ -23,7 +23,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from pipeline.artifact import write_atomically
+from tamis.artifact import write_atomically
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure

@@ -3,7 +3,7 @@
 A key's score is `bias + sum over trees of the value of the leaf the key reaches`, all integers, so
 every conforming implementation computes the same score bit for bit (invariant 2). The integer
 score divided by `scale` approximates the raw score (log-odds) of the gradient-boosted model it
-was compiled from (`pipeline.model`).
+was compiled from (`tamis.model`).
 
 Traversal rule, at an internal node with feature f and float32 threshold t: go to the right child
 when x[f] > t, otherwise to the left child. For finite inputs this is the usual `x <= t goes left`;
@@ -29,7 +29,7 @@ chunk down one level per numpy step (see `_reached_nodes`), over a breadth-first
 in which the two children of a node are adjacent, so a step is a few array gathers and one
 comparison, with no Python per row; their cost follows the depth of the leaves the rows reach.
 `score_values` and `score_row` walk one row down each tree in plain Python. When numba is installed,
-`score_batch` and `score_columns` run `pipeline.compiled.score_rows` instead: each row walks
+`score_batch` and `score_columns` run `tamis.compiled.score_rows` instead: each row walks
 each tree over the same breadth-first arrays, the same integer scores.
 """
 
@@ -42,7 +42,7 @@ from functools import cached_property
 
 import numpy as np
 
-from pipeline import compiled
+from tamis import compiled
 
 SECTION_PREFIX = "forest."
 SECTION_NAMES = ("tree_splits", "feature", "threshold", "left", "right", "value")
@@ -58,7 +58,7 @@ VALUE_DTYPES = tuple(np.dtype(t).newbyteorder("<") for t in ("i2", "i4"))
 # stay below 2^31, so an implementation that sums in int32 gets the same answer as our int64 sum.
 INT32_LIMIT = 2**31 - 1
 
-# The most leaves a tree may have: the compiled model never grows more (pipeline.model), and the
+# The most leaves a tree may have: the compiled model never grows more (tamis.model), and the
 # bound keeps a hostile file's tree walks short (depth < 64).
 MAX_TREE_LEAVES = 64
 
@@ -286,7 +286,7 @@ class _LevelLayout:
 
     @property
     def kernel_arrays(self) -> tuple[np.ndarray, ...]:
-        """The forest arguments of the `pipeline.compiled` tree kernels, in their order."""
+        """The forest arguments of the `tamis.compiled` tree kernels, in their order."""
         return self.roots, self.feature, self.threshold, self.first_child, self.value
 
 
@@ -422,7 +422,7 @@ def _leaves_by_chunk(forest: Forest, columns: np.ndarray):
 
 def score_columns(forest: Forest, columns: np.ndarray) -> np.ndarray:
     """Integer scores (int64, shape (n,)) of a feature-major float32 matrix (d, n): one row per
-    feature, as `pipeline.features.featurize_columns` gives it."""
+    feature, as `tamis.features.featurize_columns` gives it."""
     _check_matrix(forest, columns, features_axis=0)
     scores = np.full(columns.shape[1], forest.bias, dtype=np.int64)
     if forest.trees == 0:
@@ -468,7 +468,7 @@ def leaf_indices(forest: Forest, X: np.ndarray) -> np.ndarray:
 
 def score_values(forest: Forest, values: list[float]) -> int:
     """Integer score of one row given as a list of d Python floats (each a float32 value, as
-    `pipeline.features.featurize_one` returns): a plain Python walk, the same answer as score_batch.
+    `tamis.features.featurize_one` returns): a plain Python walk, the same answer as score_batch.
 
     A float32 value compares with a float32 threshold the same way in float64, so no rounding
     happens here.

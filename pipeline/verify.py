@@ -22,10 +22,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from pipeline.config import GateSettings
-from pipeline.corpus import KeySet
-from pipeline.errors import BadInput
-from pipeline.loader import MembershipFilter
+from tamis.config import GateSettings
+from tamis.corpus import KeySet
+from tamis.errors import BadInput
+from tamis.loader import MembershipFilter
 
 
 @dataclass(frozen=True)

@@ -3,7 +3,7 @@
     python tests/cli_runner.py CASES_JSON RESULTS_JSON
 
 CASES_JSON is a list of {"name", "argv", "env"}; `env` holds variables to set for that case (a null
-value unsets one). Each case calls `pipeline.cli.main(argv)` as the console script does, with file
+value unsets one). Each case calls `tamis.cli.main(argv)` as the console script does, with file
 descriptors 1 and 2 pointed at files of its own, so everything written to them is caught: our
 prints, Prefect's log handlers and anything a library writes. One process serves every case, so
 Prefect's embedded server starts once, not once a case. RESULTS_JSON receives, per case,
@@ -20,7 +20,7 @@ import tempfile
 import traceback
 from pathlib import Path
 
-from pipeline.cli import main as tamis
+from tamis.cli import main as tamis
 
 
 def _with_env(env: dict) -> dict:

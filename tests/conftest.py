@@ -3,7 +3,7 @@
 import os
 import tempfile
 
-from pipeline.cli import PREFECT_DEFAULTS
+from tamis.cli import PREFECT_DEFAULTS
 
 os.environ.setdefault("PREFECT_HOME", tempfile.mkdtemp(prefix="tamis-prefect-"))
 for _name, _value in PREFECT_DEFAULTS.items():

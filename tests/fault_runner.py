@@ -50,8 +50,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import flows.build  # noqa: E402  (the build stack, imported once before any fork)
-from pipeline import publish, report_page  # noqa: E402
+import tamis.flows.build  # noqa: E402  (the build stack, imported once before any fork)
+from tamis import publish, report_page  # noqa: E402
 from tamis_testing import plain_build_flow, small_config  # noqa: E402
 
 # Calls that change what the store holds; a kill point goes just before each of them.
@@ -204,7 +204,7 @@ def read_json(path: Path):
 
 
 def kill_points(calls: list[list[str]], seconds: float) -> list[dict]:
-    points = [{"stage": stage, "event": "start"} for stage in flows.build.STAGES]
+    points = [{"stage": stage, "event": "start"} for stage in tamis.flows.build.STAGES]
     points.append({"stage": "publish", "event": "done"})
     points += [{"call": i} for i, (call, _) in enumerate(calls) if call in CHANGING_CALLS and not _middle_write(calls, i)]
     points += [{"after_seconds": round(share * seconds, 3)} for share in DELAY_SHARES]

@@ -15,15 +15,15 @@ from pathlib import Path
 
 import numpy as np
 
-from pipeline.config import BuildConfig, CorpusSettings, FilterSettings, TargetSettings
-from pipeline.corpus import load_corpus
-from pipeline.features import default_feature_spec, featurize
-from pipeline.filters import build_filters
-from pipeline.model import ModelSettings, fit_model
-from pipeline.package import package_artifact
-from pipeline.provenance import build_provenance
-from pipeline.regions import RegionSettings, plan_regions, region_of
-from pipeline.trees import score_batch
+from tamis.config import BuildConfig, CorpusSettings, FilterSettings, TargetSettings
+from tamis.corpus import load_corpus
+from tamis.features import default_feature_spec, featurize
+from tamis.filters import build_filters
+from tamis.model import ModelSettings, fit_model
+from tamis.package import package_artifact
+from tamis.provenance import build_provenance
+from tamis.regions import RegionSettings, plan_regions, region_of
+from tamis.trees import score_batch
 
 MEMBERS, NON_MEMBERS, CORPUS_SEED = 2_000, 20_000, 20261201
 BASE36 = "abcdefghijklmnopqrstuvwxyz0123456789"

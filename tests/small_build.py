@@ -9,8 +9,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from pipeline.config import BuildConfig, config_from_dict
-from pipeline.demo import write_demo_corpus
+from tamis.config import BuildConfig, config_from_dict
+from tamis.demo import write_demo_corpus
 
 TARGET = 0.05
 

@@ -17,13 +17,13 @@ from pathlib import Path
 import lightgbm as lgb
 import numpy as np
 
-from pipeline.config import BuildConfig, CorpusSettings, GateSettings, StoreSettings, TargetSettings
-from pipeline.features import default_feature_spec, featurize
-from pipeline.filters import build_filters
-from pipeline.model import ModelSettings, compile_booster, fit_model
-from pipeline.package import package_artifact
-from pipeline.regions import RegionSettings, plan_regions, region_of
-from pipeline.trees import score_batch
+from tamis.config import BuildConfig, CorpusSettings, GateSettings, StoreSettings, TargetSettings
+from tamis.features import default_feature_spec, featurize
+from tamis.filters import build_filters
+from tamis.model import ModelSettings, compile_booster, fit_model
+from tamis.package import package_artifact
+from tamis.regions import RegionSettings, plan_regions, region_of
+from tamis.trees import score_batch
 
 # A model small enough that training takes well under a second on the small corpora of the tests:
 # one candidate of 7-leaf trees, priced every 5 trees up to 10.
@@ -96,14 +96,14 @@ class _PlainTask:
 
 @contextmanager
 def plain_build_flow() -> Iterator:
-    """`flows.build.build_flow` without Prefect: yields a function with the flow's signature.
+    """`tamis.flows.build.build_flow` without Prefect: yields a function with the flow's signature.
 
     Every Prefect task of the flow module is swapped for the function it wraps, and `quote` (which
     only tells Prefect not to inspect an argument) for the identity, while the context lasts.
     """
     import prefect
 
-    import flows.build as build
+    import tamis.flows.build as build
 
     swapped = {name: _PlainTask(value.fn) for name, value in vars(build).items() if isinstance(value, prefect.Task)}
     swapped["quote"] = lambda value: value
@@ -155,9 +155,9 @@ PROVENANCE = {"built_at": "2026-12-01T00:00:00Z", "build_id": "property"}
 
 
 def train_forest(X_members, X_train, train_counts, X_validation, validation_counts, target, how):
-    """The model: chosen by artifact bytes through pipeline.model.fit_model ("chosen", which on
+    """The model: chosen by artifact bytes through tamis.model.fit_model ("chosen", which on
     corpora this small mostly picks no tree at all), or a LightGBM booster of `how` trees grown
-    as is and compiled by pipeline.model.compile_booster."""
+    as is and compiled by tamis.model.compile_booster."""
     if how == "chosen":
         def filter_bytes(member_scores, val_scores, val_weights) -> float:
             return plan_regions(member_scores, val_scores, val_weights, target, TINY_REGIONS).estimated_total_bits / 8
@@ -177,7 +177,7 @@ def build_artifact(path, corpus, target: float, how, plan=None, provenance: dict
 
     `corpus` is (members, training non-members, their counts, validation non-members, their
     counts); `how` as in train_forest; `plan(member_scores, validation_scores)`, when given, picks
-    (boundaries, budgets) instead of pipeline.regions. Returns the number of regions."""
+    (boundaries, budgets) instead of tamis.regions. Returns the number of regions."""
     members, train, train_counts, validation, validation_counts = corpus
     spec = default_feature_spec()
     X_members, X_train, X_validation = (featurize(keys, spec) for keys in (members, train, validation))

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 import xxhash
 
-from pipeline import artifact
-from pipeline.artifact import ArtifactError, load_artifact, read_artifact, write_artifact
+from tamis import artifact
+from tamis.artifact import ArtifactError, load_artifact, read_artifact, write_artifact
 
 HEADER = {"name": "emberfall-bans", "counts": [1, 2, 3], "nested": {"z": 1.5, "a": None, "b": b"\x00\xff"}}
 

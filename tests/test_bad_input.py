@@ -2,7 +2,7 @@
 file, the place and the fix, and leaves the store exactly as it was. Input that is odd but usable
 (duplicates, a key on both lists, raw bytes read as bytes) builds, and the report counts it.
 
-The cases run in one process per group (tests/cli_runner.py) through `pipeline.cli.main`, as the
+The cases run in one process per group (tests/cli_runner.py) through `tamis.cli.main`, as the
 console script does, with their stdout and stderr caught at the file descriptors. The early group
 (the config and the command line) ends before a build starts and runs with the fast tests; the
 others run inside the build flow, cost Prefect's start and about 1.3 s of its overhead each, and
@@ -20,9 +20,9 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline import publish
-from pipeline.corpus import MEMORY_LIMIT_ENV
-from pipeline.loader import open_filter
+from tamis import publish
+from tamis.corpus import MEMORY_LIMIT_ENV
+from tamis.loader import open_filter
 from tamis_testing import SMALL_CONFIG_TOML, snapshot, write_lines, write_small_corpus
 
 TESTS = Path(__file__).resolve().parent

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 import xxhash
 
-from pipeline.bloom import (
+from tamis.bloom import (
     BloomFilter,
     bloom_fpr,
     bloom_hashes,

@@ -7,13 +7,13 @@ import math
 
 import pytest
 
-import flows.build as build
-from pipeline import cli, publish
-from pipeline import corpus as corpus_stage
-from pipeline import verify
-from pipeline.artifact import read_artifact
-from pipeline.config import ComputeSettings
-from pipeline.errors import BadInput
+import tamis.flows.build as build
+from tamis import cli, publish
+from tamis import corpus as corpus_stage
+from tamis import verify
+from tamis.artifact import read_artifact
+from tamis.config import ComputeSettings
+from tamis.errors import BadInput
 from small_build import SMALL_MODEL, small_config, write_corpus
 
 

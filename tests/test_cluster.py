@@ -2,7 +2,7 @@
 runs its chunk tasks on the workers.
 
 A local Dask cluster of two worker processes starts in-process for the module. The corpus is a
-small Emberfall demo corpus (pipeline.demo). External references: the LightGBM Python package
+small Emberfall demo corpus (tamis.demo). External references: the LightGBM Python package
 (4.x) itself, whose `Booster.predict` a compiled Dask-trained booster must reproduce; the exact
 binomial (Clopper-Pearson, Biometrika 1934) lower bound, through scipy.stats.beta, for the
 held-out false-positive rate.
@@ -27,15 +27,15 @@ from small_build import small_config, write_corpus  # noqa: E402
 from test_model import assert_budget_and_patience  # noqa: E402
 from test_trees import assert_matches_lightgbm  # noqa: E402
 
-from pipeline import publish  # noqa: E402
-from pipeline.config import ComputeSettings  # noqa: E402
-from pipeline.corpus import KeySet  # noqa: E402
-from pipeline.demo import generate_demo_corpus  # noqa: E402
-from pipeline.errors import BadInput  # noqa: E402
-from pipeline.features import default_feature_spec, featurize  # noqa: E402
-from pipeline.filters import build_filters  # noqa: E402
-from pipeline.loader import open_filter  # noqa: E402
-from pipeline.model import (  # noqa: E402
+from tamis import publish  # noqa: E402
+from tamis.config import ComputeSettings  # noqa: E402
+from tamis.corpus import KeySet  # noqa: E402
+from tamis.demo import generate_demo_corpus  # noqa: E402
+from tamis.errors import BadInput  # noqa: E402
+from tamis.features import default_feature_spec, featurize  # noqa: E402
+from tamis.filters import build_filters  # noqa: E402
+from tamis.loader import open_filter  # noqa: E402
+from tamis.model import (  # noqa: E402
     FOREST_OVERHEAD_BYTES,
     ModelSettings,
     compile_booster,
@@ -44,10 +44,10 @@ from pipeline.model import (  # noqa: E402
     scatter_rows,
     train_on_cluster,
 )
-from pipeline.package import package_artifact  # noqa: E402
-from pipeline.regions import RegionSettings, plan_regions, region_of  # noqa: E402
-from pipeline.trees import Forest, score_batch  # noqa: E402
-from pipeline.verify import check_filter  # noqa: E402
+from tamis.package import package_artifact  # noqa: E402
+from tamis.regions import RegionSettings, plan_regions, region_of  # noqa: E402
+from tamis.trees import Forest, score_batch  # noqa: E402
+from tamis.verify import check_filter  # noqa: E402
 
 TARGET_FPR = 0.02
 REGIONS = RegionSettings(segments=256)
@@ -128,7 +128,7 @@ def test_compiled_dask_booster_reproduces_lightgbm(client, corpus):
     booster = train_on_cluster(data, params, trees=12)
     assert booster.num_trees() == 12
     assert_matches_lightgbm(booster, compile_booster(booster), X["X_val_non"])
-    # the same rows on the same workers give the same trees (without pipeline.model's sorted
+    # the same rows on the same workers give the same trees (without tamis.model's sorted
     # machine numbering, this failed in 3 runs of 3)
     for _ in range(3):
         assert train_on_cluster(data, params, trees=12).dump_model()["tree_info"] == booster.dump_model()["tree_info"]
@@ -184,7 +184,7 @@ def test_a_build_on_the_cluster_keeps_the_invariants_and_the_bytes_of_a_local_bu
     """The whole flow with compute.cluster: chunk tasks on the workers through Prefect's Dask task
     runner, training through LightGBM's Dask interface. Given the same model, a build on this
     machine writes the very same bytes: chunks are computed on their own, filter bits merge by OR."""
-    import flows.build as build
+    import tamis.flows.build as build
 
     monkeypatch.setenv("SOURCE_DATE_EPOCH", "1700000000")
     members, lookups = write_corpus(tmp_path / "corpus")
@@ -225,7 +225,7 @@ def test_a_build_on_the_cluster_keeps_the_invariants_and_the_bytes_of_a_local_bu
 
 
 def test_a_scheduler_that_does_not_answer_is_bad_input_before_any_work():
-    import flows.build as build
+    import tamis.flows.build as build
 
     with pytest.raises(BadInput, match="cannot reach the Dask scheduler at 'tcp://127.0.0.1:9'"):
         build.check_cluster("tcp://127.0.0.1:9")

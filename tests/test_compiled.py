@@ -20,12 +20,12 @@ from hypothesis import strategies as st
 
 pytest.importorskip("numba")
 
-from pipeline import compiled, demo  # noqa: E402
-from pipeline.bloom import BloomFilter, hash_keys  # noqa: E402
-from pipeline.features import default_feature_spec, featurize, featurize_columns, pack_keys  # noqa: E402
-from pipeline.loader import open_filter  # noqa: E402
-from pipeline.model import compile_booster  # noqa: E402
-from pipeline.trees import score_batch, score_columns  # noqa: E402
+from tamis import compiled, demo  # noqa: E402
+from tamis.bloom import BloomFilter, hash_keys  # noqa: E402
+from tamis.features import default_feature_spec, featurize, featurize_columns, pack_keys  # noqa: E402
+from tamis.loader import open_filter  # noqa: E402
+from tamis.model import compile_booster  # noqa: E402
+from tamis.trees import score_batch, score_columns  # noqa: E402
 
 SPECS = [default_feature_spec(),
          {**default_feature_spec(), "bigram_buckets": 1, "trigram_buckets": 2, "affix_buckets": 1},
@@ -130,9 +130,9 @@ def test_bloom_answers_are_identical(bits, probes):
 
 
 def test_loader_answers_are_identical(forest_and_rows, tmp_path):
-    from pipeline.filters import build_filters
-    from pipeline.package import package_artifact
-    from pipeline.regions import RegionSettings, plan_regions, region_of
+    from tamis.filters import build_filters
+    from tamis.package import package_artifact
+    from tamis.regions import RegionSettings, plan_regions, region_of
 
     forest, _ = forest_and_rows
     spec = default_feature_spec()
@@ -155,7 +155,7 @@ def test_loader_answers_are_identical(forest_and_rows, tmp_path):
 
 
 def test_the_environment_variable_forces_the_numpy_path():
-    code = "from pipeline import compiled; print(compiled.ENABLED)"
+    code = "from tamis import compiled; print(compiled.ENABLED)"
     for value, expected in (("1", "False"), ("0", "True")):
         env = dict(os.environ, **{compiled.NUMPY_ONLY_VARIABLE: value})
         done = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True)

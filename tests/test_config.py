@@ -4,7 +4,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.config import BuildConfig, ConfigError, config_from_dict, load_config, require_paths, with_overrides
+from tamis.config import BuildConfig, ConfigError, config_from_dict, load_config, require_paths, with_overrides
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 

@@ -9,8 +9,8 @@ import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.config import CorpusSettings
-from pipeline.corpus import (
+from tamis.config import CorpusSettings
+from tamis.corpus import (
     BUILD_BASE_BYTES,
     BUILD_BYTES_PER_KEY,
     MEMORY_LIMIT_ENV,
@@ -24,8 +24,8 @@ from pipeline.corpus import (
     sample_keys,
     split_buckets,
 )
-from pipeline.errors import BadInput
-from pipeline.model import training_sample
+from tamis.errors import BadInput
+from tamis.model import training_sample
 
 SETTINGS = CorpusSettings()
 
@@ -305,7 +305,7 @@ def test_a_corpus_too_large_for_memory_is_refused_before_any_key_is_read(tmp_pat
     members = _write_lines(tmp_path / "m.txt", ["a", "b"])
     non = _write_lines(tmp_path / "n.txt", [f"n{i}" for i in range(100)])
     monkeypatch.setenv(MEMORY_LIMIT_ENV, "100M")
-    monkeypatch.setattr("pipeline.corpus.read_source", lambda *args: pytest.fail("a key was read"))
+    monkeypatch.setattr("tamis.corpus.read_source", lambda *args: pytest.fail("a key was read"))
     with pytest.raises(BadInput, match=r"needs about 0\.9 GiB .*more than the 0\.1 GiB of memory available") as raised:
         load_corpus(members, non, SETTINGS)
     assert str(members) in str(raised.value) and MEMORY_LIMIT_ENV in str(raised.value)

@@ -1,4 +1,4 @@
-"""Tests of the fictional Emberfall demo corpus (pipeline.demo)."""
+"""Tests of the fictional Emberfall demo corpus (tamis.demo)."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ import polars as pl
 import pytest
 from scipy.stats import mannwhitneyu, zipf
 
-from pipeline import demo
+from tamis import demo
 
 MEMBERS, NON_MEMBERS, SEED = 3_000, 20_000, 11
 

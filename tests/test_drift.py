@@ -7,10 +7,10 @@ import shutil
 import numpy as np
 import pytest
 
-from pipeline import publish
-from pipeline.corpus import KeySet
-from pipeline.drift import measure_drift
-from pipeline.loader import open_filter
+from tamis import publish
+from tamis.corpus import KeySet
+from tamis.drift import measure_drift
+from tamis.loader import open_filter
 from small_build import first_members, small_config, write_corpus
 from tamis_testing import plain_build_flow
 

@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import publish
+from tamis import publish
 
 # Small enough for the suite. Lookup counts are heavy-tailed, so 24,000 held-out keys carry the
 # information of only about 500 unweighted draws: a 5% target can be bounded at that size, 1% not.
@@ -18,7 +18,7 @@ MEMBERS, NON_MEMBERS, TARGET = 6000, 80000, "0.05"
 
 def tamis(*args: str, stdin: str | None = None, env: dict | None = None) -> subprocess.CompletedProcess:
     return subprocess.run(
-        [sys.executable, "-m", "pipeline.cli", *args],
+        [sys.executable, "-m", "tamis.cli", *args],
         input=stdin, capture_output=True, text=True, env={**os.environ, **(env or {})}, timeout=600,
     )
 
@@ -58,7 +58,7 @@ def test_demo_publishes_a_verified_artifact_that_meets_its_target(demo):
 
 _FRESH = """
 import sys
-from pipeline.loader import open_filter
+from tamis.loader import open_filter
 members = open(sys.argv[2], encoding="utf-8").read().splitlines()
 answers = open_filter(sys.argv[1]).contains_many(members)
 print(int(answers.sum()), len(members))

@@ -18,8 +18,8 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import publish, report_page
-from pipeline.loader import open_filter
+from tamis import publish, report_page
+from tamis.loader import open_filter
 from tamis_testing import SMALL_CONFIG_TOML, plain_build_flow, small_config, snapshot, write_small_corpus
 
 TESTS = Path(__file__).resolve().parent
@@ -239,7 +239,7 @@ def _cli_env(tmp_path: Path) -> dict:
 
 def _start_cli_build(config: Path, members: Path, non_members: Path, store: Path, env: dict) -> subprocess.Popen:
     return subprocess.Popen(
-        [sys.executable, "-m", "pipeline.cli", "build", str(config), "--members", str(members),
+        [sys.executable, "-m", "tamis.cli", "build", str(config), "--members", str(members),
          "--non-members", str(non_members), "--target-fpr", str(TARGET), "--store", str(store)],
         stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env,
     )

@@ -7,8 +7,8 @@ import sys
 import numpy as np
 import pytest
 
-from pipeline import features
-from pipeline.features import default_feature_spec, feature_count, feature_names, featurize
+from tamis import features
+from tamis.features import default_feature_spec, feature_count, feature_names, featurize
 
 SPEC = default_feature_spec()
 
@@ -70,7 +70,7 @@ def test_bad_spec_is_refused():
 
 _SCRIPT = """
 import sys, hashlib, numpy as np
-from pipeline.features import default_feature_spec, featurize
+from tamis.features import default_feature_spec, featurize
 rng = np.random.default_rng(11)
 keys = [bytes(rng.integers(0, 256, size=rng.integers(1, 40)).astype(np.uint8)) for _ in range(20000)]
 sys.stdout.write(hashlib.sha256(featurize(keys, default_feature_spec()).tobytes()).hexdigest())

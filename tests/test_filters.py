@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from pipeline.bloom import BloomFilter, bloom_bits, bloom_fpr, bloom_hashes
-from pipeline.filters import build_filters, chunk_words, empty_filters, merge_words
+from tamis.bloom import BloomFilter, bloom_bits, bloom_fpr, bloom_hashes
+from tamis.filters import build_filters, chunk_words, empty_filters, merge_words
 
 SEED = 404
 # Binomial tolerance for measured rates: 4 standard deviations (common practice).

@@ -6,10 +6,10 @@ import math
 import numpy as np
 import pytest
 
-from pipeline.config import GateSettings
-from pipeline.corpus import KeySet
-from pipeline.errors import BadInput
-from pipeline.verify import (
+from tamis.config import GateSettings
+from tamis.corpus import KeySet
+from tamis.errors import BadInput
+from tamis.verify import (
     Baseline,
     Measurement,
     Verification,

@@ -11,7 +11,7 @@ from __future__ import annotations
 import xxhash
 
 from golden_build import build_golden
-from pipeline.loader import open_filter
+from tamis.loader import open_filter
 
 # SOURCE_DATE_EPOCH for the build time: 2026-12-01T00:00:00Z.
 BUILD_EPOCH = "1796083200"

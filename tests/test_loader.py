@@ -14,15 +14,15 @@ import msgpack
 import numpy as np
 import pytest
 
-from pipeline.artifact import read_artifact, write_artifact
-from pipeline.bloom import bloom_fpr
-from pipeline.features import default_feature_spec, featurize
-from pipeline.filters import build_filters
-from pipeline.loader import FilterLoadError, open_filter
-from pipeline.model import compile_booster
-from pipeline.package import package_artifact
-from pipeline.regions import RegionSettings, plan_regions, region_of
-from pipeline.trees import score_batch
+from tamis.artifact import read_artifact, write_artifact
+from tamis.bloom import bloom_fpr
+from tamis.features import default_feature_spec, featurize
+from tamis.filters import build_filters
+from tamis.loader import FilterLoadError, open_filter
+from tamis.model import compile_booster
+from tamis.package import package_artifact
+from tamis.regions import RegionSettings, plan_regions, region_of
+from tamis.trees import score_batch
 
 TARGET_FPR = 0.02
 HASH_SEED = 0xE3B0C442
@@ -308,7 +308,7 @@ def test_unknown_header_fields_and_sections_are_ignored(built, tmp_path):
 def test_loader_imports_only_numpy_xxhash_msgpack():
     # A downstream service installs the loader without the build stack (DESIGN.md section 1).
     build_stack = "{'polars', 'lightgbm', 'scipy', 'prefect', 'pandas', 'matplotlib'}"
-    code = f"import sys, pipeline.loader; print(sorted({{m.split('.')[0] for m in sys.modules}} & {build_stack}))"
+    code = f"import sys, tamis.loader; print(sorted({{m.split('.')[0] for m in sys.modules}} & {build_stack}))"
     # numba (the optional compiled path) imports scipy itself when both are installed, so the
     # loader's own imports are checked with it switched off; the blocked-import test below shows the
     # loader also works with numba and the build stack impossible to import.
@@ -339,7 +339,7 @@ def test_polars_columns_answer_like_lists(built):
 
 
 def test_answers_do_not_depend_on_the_lookup_chunk(built, monkeypatch):
-    from pipeline import loader
+    from tamis import loader
 
     loaded = open_filter(built["path"])
     keys = built["fresh"][:5000] + built["members"][:1000]
@@ -359,7 +359,7 @@ def test_an_unusable_file_opens_degraded_with_on_error_maybe(built, tmp_path, ca
     with pytest.raises(FilterLoadError):
         open_filter(bad)
     with pytest.warns(RuntimeWarning, match="every key now answers 'maybe'") as warned:
-        with caplog.at_level("ERROR", logger="pipeline.loader"):
+        with caplog.at_level("ERROR", logger="tamis.loader"):
             degraded = open_filter(bad, on_error="maybe")
     assert len(warned) == 1
     assert [r.levelname for r in caplog.records] == ["ERROR"] and "checksum mismatch" in caplog.records[0].getMessage()
@@ -419,8 +419,8 @@ class Refuse(importlib.abc.MetaPathFinder):
         return None
 
 sys.meta_path.insert(0, Refuse())
-from pipeline import compiled
-from pipeline.loader import open_filter
+from tamis import compiled
+from tamis.loader import open_filter
 assert not compiled.ENABLED
 keys = [line.encode() for line in sys.stdin.read().split("\\n")]
 loaded = open_filter(sys.argv[1])
@@ -439,5 +439,5 @@ def test_the_loader_works_where_the_build_stack_cannot_be_imported(built):
     assert done.stdout.strip() == "".join("1" if a else "0" for a in expected)
     # the blocker really blocks: importing the build stack in the same way fails
     for module in ("polars", "numba"):
-        probe = _BLOCKED_SCRIPT.split("from pipeline import compiled")[0] + f"import {module}\n"
+        probe = _BLOCKED_SCRIPT.split("from tamis import compiled")[0] + f"import {module}\n"
         assert subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True).returncode != 0

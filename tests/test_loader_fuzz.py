@@ -22,9 +22,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from golden_build import build_golden
-from pipeline import artifact
-from pipeline.artifact import read_artifact, write_artifact
-from pipeline.loader import FilterLoadError, open_filter
+from tamis import artifact
+from tamis.artifact import read_artifact, write_artifact
+from tamis.loader import FilterLoadError, open_filter
 from test_golden import BUILD_EPOCH
 
 # Derandomized so that CI runs the same examples every time: 2,400 examples in all, the cheap raw

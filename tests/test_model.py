@@ -2,7 +2,7 @@
 
 External references: the LightGBM Python package (4.x) itself for what a compiled booster must
 reproduce; scipy.stats.mannwhitneyu for the rank formula of the AUC (U / (n1 n2)); the Bloom
-filter size m = -n ln f / (ln 2)^2 (Bloom, CACM 1970, standard analysis, via pipeline.bloom) inside
+filter size m = -n ln f / (ln 2)^2 (Bloom, CACM 1970, standard analysis, via tamis.bloom) inside
 the filter price used here; IEEE 754 binary32 for the float32 neighbours (numpy.nextafter).
 """
 
@@ -17,8 +17,8 @@ import pytest
 from scipy import stats
 from test_trees import assert_matches_lightgbm
 
-from pipeline.bloom import bloom_bits
-from pipeline.model import (
+from tamis.bloom import bloom_bits
+from tamis.model import (
     INT32_LIMIT,
     MAX_ROUNDING_ERROR,
     ModelSettings,
@@ -30,7 +30,7 @@ from pipeline.model import (
     parse_tree,
     weighted_auc,
 )
-from pipeline.trees import score_batch
+from tamis.trees import score_batch
 
 TARGET_FPR = 0.01
 

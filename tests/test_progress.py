@@ -4,7 +4,7 @@ import io
 
 import pytest
 
-from pipeline.progress import LineProgress, LiveProgress, StageEvent, count_text, progress_display
+from tamis.progress import LineProgress, LiveProgress, StageEvent, count_text, progress_display
 
 
 class Clock:

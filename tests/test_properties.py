@@ -13,13 +13,13 @@ from hypothesis import HealthCheck, event, example, given, settings
 from hypothesis import strategies as st
 from scipy import optimize, stats
 
-from pipeline.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
-from pipeline.corpus import KeySet
-from pipeline.features import default_feature_spec, featurize
-from pipeline.loader import open_filter
-from pipeline.regions import region_of
-from pipeline.trees import score_batch
-from pipeline.verify import clopper_pearson_upper, measure_fpr
+from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
+from tamis.corpus import KeySet
+from tamis.features import default_feature_spec, featurize
+from tamis.loader import open_filter
+from tamis.regions import region_of
+from tamis.trees import score_batch
+from tamis.verify import clopper_pearson_upper, measure_fpr
 from tamis_testing import HASH_SEED, build_artifact
 
 ALPHABETS = {

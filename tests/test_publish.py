@@ -8,7 +8,7 @@ import textwrap
 
 import pytest
 
-from pipeline import publish
+from tamis import publish
 from tamis_testing import snapshot
 
 
@@ -124,7 +124,7 @@ _HOLDER = textwrap.dedent(
     """
     import sys, time
     from pathlib import Path
-    from pipeline import publish
+    from tamis import publish
     staging = publish.new_staging(Path(sys.argv[1]), "holder")
     print(staging, flush=True)
     time.sleep(600)

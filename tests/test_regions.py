@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from pipeline.regions import (
+from tamis.regions import (
     RegionPlan,
     RegionSettings,
     allocate_fprs,

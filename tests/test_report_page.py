@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from pipeline import cli
-from pipeline.report_page import FIGURE_DPI, FIGURE_INCHES, REPORT_PAGE_NAME, ScoreSample, render_report_page
+from tamis import cli
+from tamis.report_page import FIGURE_DPI, FIGURE_INCHES, REPORT_PAGE_NAME, ScoreSample, render_report_page
 from small_build import small_config, write_corpus
 from tamis_testing import plain_build_flow
 

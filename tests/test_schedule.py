@@ -25,12 +25,12 @@ from prefect.exceptions import ObjectNotFound
 from prefect.settings import PREFECT_API_URL, temporary_settings
 from prefect.states import State
 
-import flows.nightly as nightly
-from flows.build import BuildOutcome
-from pipeline import publish
-from pipeline.cli import PREFECT_DEFAULTS
-from pipeline.config import ConfigError
-from pipeline.demo import write_demo_corpus
+import tamis.flows.nightly as nightly
+from tamis.flows.build import BuildOutcome
+from tamis import publish
+from tamis.cli import PREFECT_DEFAULTS
+from tamis.config import ConfigError
+from tamis.demo import write_demo_corpus
 
 # Lookup counts are heavy-tailed, so the 12,000 held-out handles of this corpus weigh like about
 # 260 unweighted draws: a 5% target can be bounded at that size, 1% cannot. Seed 3 gave a held-out
@@ -210,7 +210,7 @@ def stop_and_reap(process: subprocess.Popen, sig: int = signal.SIGTERM) -> None:
             process.wait()
 
 
-SERVE = "import sys; from pathlib import Path; from flows.nightly import serve_schedule; serve_schedule(Path(sys.argv[1]), stop_after_runs=int(sys.argv[2]))"
+SERVE = "import sys; from pathlib import Path; from tamis.flows.nightly import serve_schedule; serve_schedule(Path(sys.argv[1]), stop_after_runs=int(sys.argv[2]))"
 
 
 def read_deployment(name: str):
@@ -313,7 +313,7 @@ def first_line_starting(stream, prefix: str, timeout: float) -> str:
 def test_schedule_starts_its_own_server_and_stops_it_on_sigterm(tmp_path, prefect_home):
     home = prefect_home
     config = write_config(tmp_path, "nightly")  # serving needs no corpus until the first night
-    main = "import sys; from pathlib import Path; from flows.nightly import main_schedule; sys.exit(main_schedule(Path(sys.argv[1])))"
+    main = "import sys; from pathlib import Path; from tamis.flows.nightly import main_schedule; sys.exit(main_schedule(Path(sys.argv[1])))"
     with open(tmp_path / "serve.err", "wb") as err:
         serving = subprocess.Popen([sys.executable, "-c", main, str(config)], env=prefect_env(home), text=True,
                                    stdout=subprocess.PIPE, stderr=err)

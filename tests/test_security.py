@@ -28,11 +28,11 @@ import xxhash
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline import publish
-from pipeline.artifact import MAGIC, PREAMBLE, ArtifactError, read_artifact, write_artifact
-from pipeline.cli import main
-from pipeline.config import config_from_dict
-from pipeline.loader import FilterLoadError, open_filter
+from tamis import publish
+from tamis.artifact import MAGIC, PREAMBLE, ArtifactError, read_artifact, write_artifact
+from tamis.cli import main
+from tamis.config import config_from_dict
+from tamis.loader import FilterLoadError, open_filter
 from tamis_testing import build_artifact
 
 # Modules a deserialiser or code runner lives in, and builtins that run code: none may be reached
@@ -68,14 +68,14 @@ def artifact(tmp_path_factory, members) -> Path:
 
 def _loader_modules() -> list[str]:
     """The pipeline modules that importing the loader loads, in a fresh interpreter."""
-    code = "import sys, pipeline.loader; print('\\n'.join(sorted(m for m in sys.modules if m.startswith('pipeline'))))"
+    code = "import sys, tamis.loader; print('\\n'.join(sorted(m for m in sys.modules if m.startswith('tamis'))))"
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     return done.stdout.split()
 
 
 def test_the_loader_and_everything_it_imports_never_deserialise_or_run_code():
     modules = _loader_modules()
-    assert "pipeline.loader" in modules and "pipeline.artifact" in modules
+    assert "tamis.loader" in modules and "tamis.artifact" in modules
     for name in modules:
         spec = importlib.util.find_spec(name)
         tree = ast.parse(Path(spec.origin).read_text(encoding="utf-8"))

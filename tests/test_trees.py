@@ -16,9 +16,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from pipeline import trees as trees_module
-from pipeline.model import compile_booster
-from pipeline.trees import Forest, leaf_indices, score_batch, score_row
+from tamis import trees as trees_module
+from tamis.model import compile_booster
+from tamis.trees import Forest, leaf_indices, score_batch, score_row
 
 LGB_PARAMS = {"objective": "binary", "verbose": -1, "num_threads": 2, "seed": 3, "deterministic": True,
               "force_col_wise": True, "min_data_in_leaf": 5}

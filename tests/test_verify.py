@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from pipeline.corpus import KeySet
-from pipeline.verify import aim_fpr, clopper_pearson_upper, effective_sample_size, measure_fpr, needed_heldout
+from tamis.corpus import KeySet
+from tamis.verify import aim_fpr, clopper_pearson_upper, effective_sample_size, measure_fpr, needed_heldout
 
 
 @pytest.mark.parametrize("x, n", [(0, 50), (3, 1000), (120, 10000), (999, 1000)])

@@ -11,8 +11,8 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline.config import CorpusSettings
-from pipeline.corpus import load_corpus
+from tamis.config import CorpusSettings
+from tamis.corpus import load_corpus
 
 
 def _word_corpus_module():
