@@ -4,7 +4,8 @@ Sources are one key a line (any extension but the table ones), or a table: CSV (
 (`.parquet`, `.pq`) or NDJSON (`.ndjson`, `.jsonl`) with a `key` column and, for non-members, an
 optional `count` column of lookups. Keys become bytes: UTF-8 of the text unless the corpus is read
 with key_encoding = "bytes" (one-key-a-line files, where any byte but newline is allowed, and
-Parquet binary columns). An empty file holds no keys.
+Parquet binary columns). A one-key-a-line file is read by `tamis.keylines`: in bytes mode no byte
+of a key is changed, and a line ending in a carriage return is refused. An empty file holds no keys.
 
 Every refusal is a BadInput naming the file, the place and the fix. Places count from 1: "line N" of
 a one-key-a-line or NDJSON file, "row N (line N+1)" of a CSV (its header is line 1; the line is
@@ -39,6 +40,8 @@ import xxhash
 
 from tamis.config import CorpusSettings
 from tamis.errors import BadInput
+from tamis.keylines import KeyLinesError, split_key_lines
+from tamis.keylines import line_of_offset as _line_of_offset
 from tamis.model import training_sample
 
 TABLE_SUFFIXES = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".ndjson": "ndjson", ".jsonl": "ndjson"}
@@ -49,9 +52,6 @@ _SPLIT_BUCKETS = 10_000
 # Counts are parsed as float64; every whole number up to 2^53 is exact there, larger ones are not
 # (and no real lookup log holds 9 quadrillion lookups of one key).
 MAX_COUNT = 2**53
-
-# Some editors start UTF-8 text with a byte-order mark; it is not part of the first key.
-UTF8_BOM = b"\xef\xbb\xbf"
 
 # Failures to open that no retry can cure, with the fix each needs; other errno values propagate.
 _OPEN_PROBLEMS = {
@@ -238,10 +238,6 @@ def check_sources(members_path: Path, non_members_path: Path) -> MemoryEstimate:
 # ---------------------------------------------------------------------------------------------------
 
 
-def _line_of_offset(raw: bytes, offset: int) -> int:
-    return raw.count(b"\n", 0, offset) + 1
-
-
 def _first_invalid_utf8(keys: list[bytes]) -> int | None:
     """Index of the first key that is not valid UTF-8, or None.
 
@@ -258,21 +254,10 @@ def _first_invalid_utf8(keys: list[bytes]) -> int | None:
 
 
 def _read_lines(path: Path, raw: bytes, encoding: str) -> list[bytes]:
-    if encoding == "utf-8":
-        try:
-            raw.decode("utf-8")
-        except UnicodeDecodeError as exc:
-            raise BadInput(
-                f"{path}: line {_line_of_offset(raw, exc.start)} is not valid UTF-8 (byte {exc.start}); fix the key, "
-                f"or read keys as raw bytes with key_encoding = \"bytes\" (--key-encoding bytes)"
-            ) from None
-        if raw.startswith(UTF8_BOM):
-            raw = raw[len(UTF8_BOM) :]
-    lines = raw.split(b"\n")
-    if lines and lines[-1] == b"":
-        lines.pop()
-    # accept Windows line ends: a key never ends in a carriage return
-    return [line[:-1] if line.endswith(b"\r") else line for line in lines]
+    try:
+        return split_key_lines(raw, encoding, bytes_option='key_encoding = "bytes" (--key-encoding bytes)')
+    except KeyLinesError as exc:
+        raise BadInput(f"{path}: {exc}") from None
 
 
 def _csv_problem(text: str) -> str | None:

@@ -82,6 +82,16 @@ def test_raw_bytes_mode_accepts_any_byte_but_newline(tmp_path):
     assert source.keys == [b"\xff\xfe", b"\x00\x01"]
 
 
+def test_raw_bytes_mode_never_changes_a_key_and_refuses_a_line_ending_in_a_carriage_return(tmp_path):
+    inside = _write(tmp_path / "inside.bin", b"a\rb\n\r\x00\n")
+    assert read_source(inside, CorpusSettings(key_encoding="bytes"), want_counts=False).keys == [b"a\rb", b"\r\x00"]
+    # a key's last byte 0x0D and a Windows line end look alike in a line file: refused, never stripped
+    for content, line in [(b"ok\nends_in_cr\r\nok2\n", 2), (b"ok\nlast\r", 2), (b"first\r\n", 1)]:
+        path = _write(tmp_path / "cr.bin", content)
+        with pytest.raises(BadInput, match=rf"cr.bin: line {line} ends in a carriage return .*convert them to LF"):
+            read_source(path, CorpusSettings(key_encoding="bytes"), want_counts=False)
+
+
 @pytest.mark.parametrize("count, shown", [(-1, "-1"), (0, "0"), (1.5, "1.5"), (float("nan"), "nan")])
 def test_bad_counts_are_named_with_their_row(tmp_path, count, shown):
     path = tmp_path / "lookups.parquet"
