@@ -165,13 +165,36 @@ def _open(given: str):
         raise BadInput(str(exc)) from None
 
 
+def lookup_keys(arguments: list[str], encoding: str) -> list[bytes]:
+    """The keys `tamis lookup` answers, as bytes and whatever the locale: each argument's bytes as
+    the shell passed them, or else the lines of standard input's bytes (`tamis.keylines`). In
+    "utf-8" mode a key that is not valid UTF-8 is refused, as the build refuses it."""
+    from tamis.keylines import KeyLinesError, split_key_lines
+
+    if not arguments:
+        try:
+            return split_key_lines(sys.stdin.buffer.read(), encoding, bytes_option="--key-encoding bytes")
+        except KeyLinesError as exc:
+            raise BadInput(f"standard input: {exc}") from None
+    keys = [os.fsencode(argument) for argument in arguments]  # the exact bytes of argv
+    if encoding == "utf-8":
+        for number, key in enumerate(keys, start=1):
+            try:
+                key.decode("utf-8")
+            except UnicodeDecodeError:
+                raise BadInput(
+                    f"key argument {number} ({key!r}) is not valid UTF-8; look it up as raw bytes with --key-encoding bytes"
+                ) from None
+    return keys
+
+
 def cmd_lookup(args) -> int:
     loaded = _open(args.artifact)
-    keys = args.keys if args.keys else [line.rstrip("\r\n") for line in sys.stdin]
+    keys = lookup_keys(args.keys, args.key_encoding)
     answers = loaded.contains_many(keys)
-    out = sys.stdout
-    for key, answer in zip(keys, answers):
-        out.write(f"{key}\t{'maybe' if answer else 'no'}\n")
+    out = sys.stdout.buffer
+    out.writelines(key + (b"\tmaybe\n" if answer else b"\tno\n") for key, answer in zip(keys, answers))
+    out.flush()
     return 0
 
 
@@ -260,7 +283,10 @@ EXAMPLES = {
         "  tamis build --members banned.txt --non-members lookups.parquet --target-fpr 0.01 --store /srv/filters\n"
         "  tamis build configs/nightly.example.toml --cluster tcp://10.0.0.5:8786"
     ),
-    "lookup": "examples:\n  tamis lookup store/3/artifact.tamis someone_42\n  tamis lookup store < handles.txt",
+    "lookup": (
+        "examples:\n  tamis lookup store/3/artifact.tamis someone_42\n  tamis lookup store < handles.txt\n"
+        "  tamis lookup --key-encoding bytes store < raw_keys.bin"
+    ),
     "show": "examples:\n  tamis show store\n  tamis show store/3/artifact.tamis",
     "versions": "example:\n  tamis versions /srv/filters",
     "rollback": "example:\n  tamis rollback /srv/filters",
@@ -302,6 +328,10 @@ def make_parser() -> argparse.ArgumentParser:
     lookup = command("lookup", "answer keys: KEY<TAB>maybe or KEY<TAB>no, in input order")
     lookup.add_argument("artifact", help="an artifact file, or a store folder (its CURRENT version)")
     lookup.add_argument("keys", nargs="*", help="keys to look up (default: one a line from stdin)")
+    lookup.add_argument("--key-encoding", choices=("utf-8", "bytes"), default="utf-8",
+                        help="keys are UTF-8 text (default; a CR before a line's LF ends the line) or raw bytes "
+                             "(every byte but LF is the key's; a line ending in CR is refused); input and output "
+                             "are bytes, whatever the locale")
     lookup.set_defaults(run=cmd_lookup)
 
     show = command("show", "header, sizes, regions, measured FPR and provenance of an artifact")
