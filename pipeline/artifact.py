@@ -25,14 +25,15 @@ Layout of format 1.0 (all integers little-endian):
 
 The magic's first byte has the high bit set and it ends in CR LF, so a 7-bit or newline-translating
 copy is caught at once (common practice for binary formats). Map keys in the header are sorted and
-nothing time-dependent is added here, so equal inputs give byte-identical files. Reading maps the
-file and returns read-only numpy views over it: no copy, and nothing in the file is ever executed.
+nothing time-dependent is added here, so equal inputs give byte-identical files. Reading takes one
+copy of the file into memory, checks it and returns read-only numpy views over that copy: a file
+rewritten or truncated in place afterwards changes nothing already read (a shared mapping would
+answer from the new bytes unchecked, or fault), and nothing in the file is ever executed.
 """
 
 from __future__ import annotations
 
 import math
-import mmap
 import os
 import struct
 from collections.abc import Iterable, Mapping
@@ -204,21 +205,19 @@ def _refuse_extension(code: int, data: bytes) -> None:
     raise ArtifactError(f"header uses msgpack extension type {code}, which this format never writes")
 
 
-def _map_file(path: Path) -> mmap.mmap | bytes:
-    """The file's bytes, mapped read-only (an empty file maps to b"")."""
+def _read_file(path: Path) -> bytes:
+    """The file's bytes, read once into memory: the copy that is checked and then answered from."""
     try:
         with open(path, "rb") as handle:
-            if os.fstat(handle.fileno()).st_size == 0:
-                return b""
-            return mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+            return handle.read()
     except OSError as error:
         raise ArtifactError(f"cannot read artifact {path}: {error.strerror or error}") from error
 
 
-def _read_preamble(path: Path, data: mmap.mmap | bytes) -> tuple[tuple[int, int], int, int]:
+def _read_preamble(path: Path, data: bytes) -> tuple[tuple[int, int], int, int]:
     """Check magic and version; return ((major, minor), header length, header checksum)."""
     size = len(data)
-    head = bytes(data[: len(MAGIC)])
+    head = data[: len(MAGIC)]
     if head != MAGIC:
         if MAGIC.startswith(head):
             raise ArtifactError(f"{path}: truncated at byte {size} (inside the magic bytes)")
@@ -318,7 +317,7 @@ def _check_bounds(path: Path, table: list[dict], header_end: int, size: int) -> 
 @dataclass(frozen=True, eq=False)
 class Artifact:
     """A checked artifact: its header (the meta map written), its sections (read-only views of the
-    mapped file) and the format version (major, minor) the file declares."""
+    file's bytes as read) and the format version (major, minor) the file declares."""
 
     header: dict
     sections: dict[str, np.ndarray]
@@ -326,15 +325,17 @@ class Artifact:
 
 
 def load_artifact(path: str | os.PathLike) -> Artifact:
-    """Map and check an artifact file.
+    """Read and check an artifact file.
 
-    Checks magic, major version, header bounds and checksum, every section's table entry, bounds and
-    checksum before returning; raises ArtifactError saying what is wrong and where.
+    Reads the file into memory once, then checks magic, major version, header bounds and checksum,
+    every section's table entry, bounds and checksum in that copy before returning; raises
+    ArtifactError saying what is wrong and where. The sections are views of the same copy, so what
+    was checked is what is answered from, whatever happens to the file afterwards.
     """
     path = Path(path)
-    data = _map_file(path)
+    data = _read_file(path)
     version, header_length, header_sum = _read_preamble(path, data)
-    decoded = _decode_header(path, bytes(data[PREAMBLE.size : PREAMBLE.size + header_length]), header_sum)
+    decoded = _decode_header(path, data[PREAMBLE.size : PREAMBLE.size + header_length], header_sum)
     table = [_check_entry(path, entry, i) for i, entry in enumerate(decoded["sections"])]
     _check_bounds(path, table, PREAMBLE.size + header_length, len(data))
     sections = {}

@@ -388,8 +388,8 @@ def open_filter(path: str | os.PathLike, on_error: OnError = "raise") -> Members
     on_error="maybe": return a `DegradedFilter` instead, which answers True for every key, after
     logging the reason at ERROR level and issuing a RuntimeWarning, once, here.
 
-    The bit arrays stay mapped from the file (read-only, not copied), so the file must not be
-    rewritten in place while open; replacing it by rename, as publishing does, is safe.
+    The file is read into memory once and checked there, and every answer comes from that copy:
+    rewriting, truncating or replacing the file afterwards changes no answer of the opened filter.
     """
     if on_error not in ON_ERROR_CHOICES:
         raise ValueError(f"on_error must be one of {list(ON_ERROR_CHOICES)}, got {on_error!r}")

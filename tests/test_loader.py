@@ -126,6 +126,40 @@ def test_single_and_batch_paths_agree(built):
     assert [loaded.contains(k) for k in keys] == batch.tolist()
 
 
+def test_a_file_rewritten_in_place_after_open_changes_no_answer(built, tmp_path):
+    # as a copy over the file or `rsync --inplace` does: same inode, other bytes
+    path = tmp_path / "served.tamis"
+    path.write_bytes(built["path"].read_bytes())
+    loaded = open_filter(path)
+    keys = built["members"] + built["fresh"][:5000]
+    before = loaded.contains_many(keys)
+    with open(path, "r+b") as handle:
+        handle.write(bytes(path.stat().st_size))
+    assert loaded.contains_many(keys).tolist() == before.tolist()
+    assert [loaded.contains(k) for k in keys[:2000]] == before[:2000].tolist()
+    assert before[: len(built["members"])].all()
+
+
+_TRUNCATED_SCRIPT = """
+import os, sys
+from tamis.loader import open_filter
+keys = sys.stdin.buffer.read().split(b"\\n")
+loaded = open_filter(sys.argv[1])
+os.truncate(sys.argv[1], 0)
+print(int(loaded.contains_many(keys).sum()), sum(loaded.contains(k) for k in keys), len(keys))
+"""
+
+
+def test_a_file_truncated_in_place_after_open_still_answers(built, tmp_path):
+    # in a process of its own: a mapped file that shrinks kills its reader with SIGBUS
+    path = tmp_path / "served.tamis"
+    path.write_bytes(built["path"].read_bytes())
+    done = subprocess.run([sys.executable, "-c", _TRUNCATED_SCRIPT, str(path)], input=b"\n".join(built["members"]),
+                          capture_output=True, timeout=120)
+    assert done.returncode == 0, (done.returncode, done.stderr.decode()[-2000:])
+    assert done.stdout.split() == [str(len(built["members"])).encode()] * 3
+
+
 def test_yes_and_no_regions_answer_by_region_alone(built, tmp_path):
     # Two regions split at the median member score: members of the upper one go in, the budgets are
     # 0 and 1, so the lower region answers no and the upper yes, whatever the key.
