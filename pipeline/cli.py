@@ -16,7 +16,7 @@ import traceback
 from importlib import resources
 from pathlib import Path
 
-from tamis import publish
+from tamis import publish, tool_version
 from tamis.errors import BadInput
 
 EXIT_PUBLISHED, EXIT_REFUSED, EXIT_BAD_INPUT, EXIT_FAILED = 0, 1, 2, 3
@@ -75,13 +75,14 @@ def failure_text(failure, store: Path) -> str:
 
 
 def drift_text(drift: dict) -> str:
-    """One line on the version in service against today's corpus."""
+    """One line on the version that was in service when the build ran, against its corpus (the
+    report keeps this state of the build's time; `service_now_text` tells the store's state now)."""
     if drift["status"] == "none":
-        return "  in service: none yet"
+        return "  in service when built: none (this build found no version in service)"
     if drift["status"] == "unreadable":
-        return f"  in service: {drift['error']}"
+        return f"  in service when built: {drift['error']}"
     return (
-        f"  in service: version {drift['current_version']} misses {drift['members_missed']:,} of today's members "
+        f"  in service when built: version {drift['current_version']}, which misses {drift['members_missed']:,} of today's members "
         f"({drift['members_missed_share']:.2%}); its held-out FPR {drift['heldout_fpr']:.4%} "
         f"(upper bound {drift['heldout_fpr_upper']:.4%})"
     )
@@ -136,6 +137,8 @@ def cmd_build(args) -> int:
             "members": Path(args.members).resolve() if args.members else None,
             "non_members": Path(args.non_members).resolve() if args.non_members else None,
             "key_encoding": args.key_encoding,
+            "key_column": args.key_column,
+            "count_column": args.count_column,
         },
         target={"fpr": args.target_fpr},
         store={"path": Path(args.store).resolve() if args.store else None},
@@ -209,6 +212,31 @@ def report_text(report_path: Path) -> str:
         return f"report: {report_path} is unreadable or incomplete ({type(exc).__name__}: {exc}); the artifact above is complete\n"
 
 
+def measured_sample_text(measured: dict) -> str:
+    """What a held-out rate was measured on: lookups when the corpus had counts (the rate is then
+    by lookups), distinct keys otherwise (one lookup each, so both counts agree)."""
+    if measured.get("lookups", measured["keys"]) == measured["keys"]:
+        return f"{measured['keys']:,} held-out keys"
+    return f"{measured['lookups']:,} lookups of {measured['keys']:,} held-out keys (the rate is by lookups)"
+
+
+def service_now_text(artifact: Path) -> str:
+    """For an artifact published in a store (STORE/<version>/artifact): the version in service
+    now; nothing for an artifact elsewhere."""
+    folder = artifact.resolve().parent
+    store = folder.parent
+    if not publish.is_version_name(folder.name) or int(folder.name) not in publish.published_versions(store):
+        return ""
+    try:
+        current = publish.current_version(store)
+    except publish.StoreError as exc:
+        return f"in service now: unknown ({exc})\n"
+    if current is None:
+        return f"in service now: none (store {store})\n"
+    this = "this version" if current == int(folder.name) else f"this artifact is version {folder.name}"
+    return f"in service now: version {current} of store {store} ({this})\n"
+
+
 def show_text(path: Path, info: dict) -> str:
     """What `tamis show` prints: the header in words, the regions as a table, the report's summary."""
     provenance = info.get("provenance", {})
@@ -229,9 +257,10 @@ def show_text(path: Path, info: dict) -> str:
     measured = info.get("measured")
     if measured:
         lines.append(
-            f"  measured on {measured['keys']:,} held-out keys: FPR {measured['fpr']:.4%} (upper bound {measured['fpr_upper']:.4%} at {measured['confidence']:.0%})"
+            f"  measured on {measured_sample_text(measured)}: FPR {measured['fpr']:.4%} "
+            f"(upper bound {measured['fpr_upper']:.4%} at {measured['confidence']:.0%})"
         )
-    text = "\n".join(lines) + "\n" + report_text(path.with_name(publish.REPORT_NAME))
+    text = "\n".join(lines) + "\n" + report_text(path.with_name(publish.REPORT_NAME)) + service_now_text(path)
     from tamis.report_page import REPORT_PAGE_NAME
 
     page = path.with_name(REPORT_PAGE_NAME)
@@ -249,6 +278,7 @@ def cmd_show(args) -> int:
 
 def cmd_versions(args) -> int:
     store = Path(args.store)
+    publish.require_store(store)
     current = publish.current_version(store)
     versions = publish.published_versions(store)
     if not versions:
@@ -271,8 +301,8 @@ def cmd_schedule(args) -> int:
 
 
 def cmd_rollback(args) -> int:
-    version = publish.rollback(Path(args.store))
-    print(f"version {version} is current")
+    version = publish.rollback(Path(args.store), to=args.to)
+    print(f"version {version} is in service")
     return 0
 
 
@@ -289,13 +319,20 @@ EXAMPLES = {
     ),
     "show": "examples:\n  tamis show store\n  tamis show store/3/artifact.tamis",
     "versions": "example:\n  tamis versions /srv/filters",
-    "rollback": "example:\n  tamis rollback /srv/filters",
+    "rollback": "examples:\n  tamis rollback /srv/filters\n  tamis rollback /srv/filters --to 7",
     "schedule": "example:\n  tamis schedule configs/nightly.example.toml",
 }
 
 
+TARGET_HELP = (
+    "the false-positive rate to meet, as a fraction: 0.01 is 1%% (default: the config's target.fpr, "
+    "else 0.01, i.e. 1%%)"
+)
+
+
 def make_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="tamis", description="Build and query compact learned membership filters.")
+    parser.add_argument("--version", action="version", version=f"tamis {tool_version()}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     def command(name: str, help_text: str):
@@ -307,16 +344,20 @@ def make_parser() -> argparse.ArgumentParser:
     demo.add_argument("--members", type=int, default=200_000, help="banned handles to generate (default 200,000)")
     demo.add_argument("--non-members", type=int, default=2_000_000, help="distinct looked-up handles (default 2,000,000)")
     demo.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
-    demo.add_argument("--target-fpr", type=float, help="the false-positive rate to meet (default: configs/demo.toml, 1%%)")
+    demo.add_argument("--target-fpr", type=float, help=TARGET_HELP)
     demo.set_defaults(run=cmd_demo)
 
     build = command("build", "one rebuild from a TOML config and/or plain options (options override the config)")
     build.add_argument("config", nargs="?", help="TOML build configuration")
     build.add_argument("--members", help="members: one key a line, or a table (CSV, Parquet, NDJSON) with a key column")
     build.add_argument("--non-members", help="non-members: one key a line, or a table with key and optional count columns")
-    build.add_argument("--target-fpr", type=float, help="the false-positive rate to meet, e.g. 0.01")
+    build.add_argument("--target-fpr", type=float, help=TARGET_HELP)
     build.add_argument("--store", help="store folder to publish into")
     build.add_argument("--key-encoding", choices=("utf-8", "bytes"), help="read keys as UTF-8 text (default) or raw bytes")
+    build.add_argument("--key-column", metavar="NAME", help="the column of keys in a table source (default: key)")
+    build.add_argument("--count-column", metavar="NAME",
+                       help="the column of lookup counts in the non-members table (default: count, when there is one); "
+                            "'' reads no counts, every key looked up once")
     build.add_argument("--no-change-limits", action="store_true",
                        help="for this build, turn off the gate's limits on change against the version in service "
                             "(max_size_growth, max_member_drop): for a deliberate large change")
@@ -342,8 +383,11 @@ def make_parser() -> argparse.ArgumentParser:
     versions.add_argument("store")
     versions.set_defaults(run=cmd_versions)
 
-    rollback = command("rollback", "make the version before CURRENT current again")
+    rollback = command("rollback", "put a published version back in service: the one before the version in "
+                                   "service, or the one --to names (older or newer)")
     rollback.add_argument("store")
+    rollback.add_argument("--to", type=int, metavar="VERSION",
+                          help="the published version to put in service (see `tamis versions`), e.g. to undo a rollback")
     rollback.set_defaults(run=cmd_rollback)
 
     schedule = command("schedule", "serve the nightly build on the config's cron through Prefect (until Ctrl-C)")

@@ -2,8 +2,8 @@
 
 A config file has these tables (every key optional unless marked; `configs/demo.toml` shows them all):
 
-    [corpus]   members*, non_members* (paths, relative to the config file), key_encoding, max_key_bytes,
-               conflicts, split_seed, validation_share, heldout_share
+    [corpus]   members*, non_members* (paths, relative to the config file), key_column, count_column,
+               key_encoding, max_key_bytes, conflicts, split_seed, validation_share, heldout_share
     [target]   fpr*
     [model]    the fields of tamis.model.ModelSettings
     [regions]  the fields of tamis.regions.RegionSettings
@@ -36,10 +36,18 @@ class ConfigError(BadInput):
     """A config value that cannot be used; the message names the key path and the allowed values."""
 
 
+# The column of lookup counts a non-member table is read with unless corpus.count_column names another.
+DEFAULT_COUNT_COLUMN = "count"
+
+
 @dataclass(frozen=True)
 class CorpusSettings:
     members: Path | None = None
     non_members: Path | None = None
+    # the columns of a table source (CSV, Parquet, NDJSON): the keys, and the non-members' lookup
+    # counts; an empty count_column reads no counts (every key looked up once)
+    key_column: str = "key"
+    count_column: str = DEFAULT_COUNT_COLUMN
     # "utf-8": keys must be valid UTF-8 text; "bytes": keys are taken as raw bytes
     key_encoding: str = field(default="utf-8", metadata={"choices": ("utf-8", "bytes")})
     max_key_bytes: int = field(default=4096, metadata={"range": (1, 1 << 20)})
@@ -51,6 +59,10 @@ class CorpusSettings:
     heldout_share: float = field(default=0.3, metadata={"range": (0.05, 0.9)})
 
     def __post_init__(self) -> None:
+        if not self.key_column:
+            raise ValueError("key_column must name the column of keys")
+        if self.key_column == self.count_column:
+            raise ValueError(f"key_column and count_column must be different columns, both are {self.key_column!r}")
         if self.validation_share + self.heldout_share > 0.9:
             raise ValueError("validation_share + heldout_share must leave at least 0.1 of the non-members for training")
 
@@ -166,14 +178,28 @@ def _coerce(value: Any, annotation: Any, where: str, base: Path) -> Any:
     raise ConfigError(f"config key {where} has a type this reader does not know ({annotation})")
 
 
-def _check_limits(value: Any, meta: typing.Mapping, where: str) -> None:
+def percent_meant(value: Any, low: float, high: float) -> float | None:
+    """The fraction a user most likely meant by an out-of-range rate typed as a percentage (5 for
+    0.05, 1 for 0.01): value / 100 when the value is at least 1, the field's range stops below 1,
+    and value / 100 lies in it; None when no reading is obvious."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or high >= 1 or value < 1:
+        return None
+    meant = value / 100
+    return meant if low <= meant <= high else None
+
+
+def _check_limits(value: Any, meta: typing.Mapping, subject: str) -> None:
+    """Refuse a value outside its field's range or choices; `subject` names where it was given
+    ("config key target.fpr", "option --target-fpr")."""
     if "range" in meta:
         low, high = meta["range"]
         if not low <= value <= high:
-            raise ConfigError(f"config key {where} must be between {low} and {high}, got {value!r}")
+            meant = percent_meant(value, low, high)
+            hint = "" if meant is None else f"; did you mean {meant:g} ({value:g}%)?"
+            raise ConfigError(f"{subject} must be between {low} and {high}, got {value!r}{hint}")
     if "choices" in meta and value not in meta["choices"]:
         allowed = ", ".join(repr(c) for c in meta["choices"])
-        raise ConfigError(f"config key {where} must be one of {allowed}, got {value!r}")
+        raise ConfigError(f"{subject} must be one of {allowed}, got {value!r}")
 
 
 def _build_section(cls: type, table: Any, where: str, base: Path) -> Any:
@@ -187,7 +213,7 @@ def _build_section(cls: type, table: Any, where: str, base: Path) -> Any:
             allowed = ", ".join(sorted(fields))
             raise ConfigError(f"unknown config key {where}.{name} (allowed in [{where}]: {allowed})")
         values[name] = _coerce(value, hints[name], f"{where}.{name}", base)
-        _check_limits(values[name], fields[name].metadata, f"{where}.{name}")
+        _check_limits(values[name], fields[name].metadata, f"config key {where}.{name}")
     try:
         return cls(**values)
     except (TypeError, ValueError) as exc:
@@ -220,16 +246,39 @@ def load_config(path: Path) -> BuildConfig:
     return config_from_dict(raw, path.parent)
 
 
+# The command-line options that set config keys (`tamis build`, `tamis demo`).
+OPTIONS = {
+    "corpus.members": "--members",
+    "corpus.non_members": "--non-members",
+    "corpus.key_encoding": "--key-encoding",
+    "corpus.key_column": "--key-column",
+    "corpus.count_column": "--count-column",
+    "target.fpr": "--target-fpr",
+    "store.path": "--store",
+    "compute.cluster": "--cluster",
+}
+
+
+def _subject(where: str) -> str:
+    """How a message names a value given for config key `where`: the option that sets it, if any."""
+    return f"option {OPTIONS[where]}" if where in OPTIONS else f"config key {where}"
+
+
 def with_overrides(config: BuildConfig, **sections: dict) -> BuildConfig:
-    """A copy of `config` with some fields of some sections replaced (the CLI's plain options)."""
+    """A copy of `config` with some fields of some sections replaced by the CLI's plain options;
+    a value out of range is refused naming the option that gave it (`OPTIONS`)."""
     changes = {}
     for name, fields in sections.items():
         given = {k: v for k, v in fields.items() if v is not None}
         if given:
             section = getattr(config, name)
             for key, value in given.items():
-                _check_limits(value, {f.name: f for f in dataclasses.fields(section)}[key].metadata, f"{name}.{key}")
-            changes[name] = dataclasses.replace(section, **given)
+                meta = {f.name: f for f in dataclasses.fields(section)}[key].metadata
+                _check_limits(value, meta, _subject(f"{name}.{key}"))
+            try:
+                changes[name] = dataclasses.replace(section, **given)
+            except ValueError as exc:
+                raise ConfigError(f"options for [{name}]: {exc}") from None
     return dataclasses.replace(config, **changes)
 
 
@@ -237,6 +286,4 @@ def require_paths(config: BuildConfig) -> None:
     """The three paths a build cannot run without."""
     for where, value in (("corpus.members", config.corpus.members), ("corpus.non_members", config.corpus.non_members), ("store.path", config.store.path)):
         if value is None:
-            option = "--" + where.split(".")[1].replace("_", "-")
-            option = "--store" if where == "store.path" else option
-            raise ConfigError(f"no {where} given: set it in the config or pass {option}")
+            raise ConfigError(f"no {where} given: set it in the config or pass {OPTIONS[where]}")

@@ -2,7 +2,9 @@
 
 Sources are one key a line (any extension but the table ones), or a table: CSV (`.csv`), Parquet
 (`.parquet`, `.pq`) or NDJSON (`.ndjson`, `.jsonl`) with a `key` column and, for non-members, an
-optional `count` column of lookups. Keys become bytes: UTF-8 of the text unless the corpus is read
+optional `count` column of lookups (other names: corpus.key_column and corpus.count_column; a
+column name given twice, or numbers in another column where no count column is found, are refused
+rather than guessed at). Keys become bytes: UTF-8 of the text unless the corpus is read
 with key_encoding = "bytes" (one-key-a-line files, where any byte but newline is allowed, and
 Parquet binary columns). A one-key-a-line file is read by `tamis.keylines`: in bytes mode no byte
 of a key is changed, and a line ending in a carriage return is refused. An empty file holds no keys.
@@ -38,7 +40,7 @@ import numpy as np
 import polars as pl
 import xxhash
 
-from tamis.config import CorpusSettings
+from tamis.config import DEFAULT_COUNT_COLUMN, CorpusSettings
 from tamis.errors import BadInput
 from tamis.keylines import KeyLinesError, split_key_lines
 from tamis.keylines import line_of_offset as _line_of_offset
@@ -326,15 +328,120 @@ def _scan(path: Path, kind: str) -> pl.LazyFrame:
     return pl.scan_ndjson(path)
 
 
-def _read_frame(path: Path, kind: str, want_counts: bool) -> pl.DataFrame:
-    """The `key` column (and `count`, when wanted and present) of a table, read lazily: polars
-    reads only those columns of the file (of a Parquet file, only their column chunks)."""
+def _duplicate_name(names: list[str]) -> str | None:
+    """The first column name given twice, or None."""
+    seen: set[str] = set()
+    for name in names:
+        if name in seen:
+            return name
+        seen.add(name)
+    return None
+
+
+def _csv_header(path: Path) -> list[str]:
+    """The column names a CSV's first line gives, as written (polars renames a repeated name)."""
+    with open(path, encoding="utf-8-sig", newline="") as handle:
+        return next(csv.reader(handle), [])
+
+
+def _ndjson_repeated_name(path: Path) -> str | None:
+    """A name given twice inside one object among the objects of an NDJSON file's first MiB, or
+    None. A JSON parser keeps one of the two values without a word (polars the first, Python's json
+    the last), so a repeated name is refused rather than read one way or the other. The sample
+    catches a writer that repeats a name in every row; checking every line would cost a JSON parse
+    of each in Python."""
+    with open(path, "rb") as handle:
+        sample = handle.read(_SAMPLE_BYTES)
+    found: list[str] = []
+
+    def pairs(items: list[tuple[str, object]]) -> dict:
+        repeated = _duplicate_name([name for name, _ in items])
+        if repeated is not None:
+            found.append(repeated)
+        return dict(items)
+
+    lines = sample.split(b"\n")
+    for line in lines if len(sample) < _SAMPLE_BYTES else lines[:-1]:  # the last line of a cut sample is partial
+        try:
+            json.loads(line, object_pairs_hook=pairs) if line.strip() else None
+        except ValueError:
+            return None  # not JSON: reading the file says where
+        if found:
+            return found[0]
+    return None
+
+
+def _refuse_repeated_columns(path: Path, kind: str) -> None:
+    repeated = None
+    if kind == "csv":
+        header = _csv_header(path)
+        repeated = _duplicate_name(header)
+        listed = ", ".join(header)
+    elif kind == "ndjson":
+        repeated = _ndjson_repeated_name(path)
+        listed = None
+    if repeated is not None:
+        shown = f" (columns: {listed})" if listed else " in one object"
+        raise BadInput(
+            f"{path}: the column name `{repeated}` is given twice{shown}, so which one to read cannot be told; "
+            f"give each column its own name"
+        )
+
+
+def _holds_numbers(lazy: pl.LazyFrame, name: str, dtype: pl.DataType) -> bool:
+    """True for a numeric column, or a text one (CSV) whose every filled value reads as a number."""
+    if dtype == pl.Boolean:
+        return False
+    if dtype.is_numeric():
+        return True
+    if dtype != pl.String:
+        return False
+    values = lazy.select(pl.col(name)).collect().to_series().drop_nulls()
+    return len(values) > 0 and values.cast(pl.Float64, strict=False).null_count() == 0
+
+
+def _count_column(path: Path, lazy: pl.LazyFrame, schema: pl.Schema, settings: CorpusSettings) -> str | None:
+    """The column of lookup counts: corpus.count_column when it is there; none when it is empty,
+    or when it is the default name, absent, and no other column holds numbers. Any other case is
+    refused: a named column that is missing, or numbers in a column of another name (they may be
+    the counts; reading every key as looked up once would be a silent guess)."""
+    wanted = settings.count_column
+    if not wanted:
+        return None
+    if wanted in schema:
+        return wanted
+    columns = ", ".join(schema.names())
+    if wanted != DEFAULT_COUNT_COLUMN:
+        raise BadInput(
+            f"{path}: no `{wanted}` column for the lookup counts (columns: {columns}); give the name of the count "
+            f"column with --count-column NAME (corpus.count_column), or an empty name to count every key once"
+        )
+    numeric = [name for name, dtype in schema.items() if name != settings.key_column and _holds_numbers(lazy, name, dtype)]
+    if numeric:
+        raise BadInput(
+            f"{path}: no `count` column, but column `{numeric[0]}` holds numbers (columns: {columns}); if it counts "
+            f"lookups, pass --count-column {numeric[0]} (corpus.count_column = \"{numeric[0]}\"); if not, pass "
+            f"--count-column '' (corpus.count_column = \"\") to count every key once"
+        )
+    return None
+
+
+def _read_frame(path: Path, kind: str, settings: CorpusSettings, want_counts: bool) -> pl.DataFrame:
+    """The key column as `key` (and the count column as `count`, when wanted and found: see
+    `_count_column`) of a table, read lazily: polars reads only those columns of the file (of a
+    Parquet file, only their column chunks). A column name given twice is refused."""
     try:
+        _refuse_repeated_columns(path, kind)
         lazy = _scan(path, kind)
-        columns = lazy.collect_schema().names()
-        if "key" not in columns:
-            raise BadInput(f"{path}: no `key` column (columns: {', '.join(columns) or 'none'}); name the key column `key`")
-        wanted = ["key", "count"] if want_counts and "count" in columns else ["key"]
+        schema = lazy.collect_schema()
+        key = settings.key_column
+        if key not in schema:
+            raise BadInput(
+                f"{path}: no `{key}` column (columns: {', '.join(schema.names()) or 'none'}); name the key column "
+                f"`{key}`, or give its name with --key-column NAME (corpus.key_column)"
+            )
+        count = _count_column(path, lazy, schema, settings) if want_counts else None
+        wanted = [pl.col(key).alias("key")] + ([pl.col(count).alias("count")] if count else [])
         return lazy.select(wanted).collect()
     except (pl.exceptions.PolarsError, ValueError) as exc:
         raise BadInput(_table_problem(path, kind, exc)) from None
@@ -354,10 +461,10 @@ def _place(path: Path, kind: str, row: int) -> str:
     return f"row {row + 1}"
 
 
-def _read_counts(path: Path, kind: str, column: pl.Series) -> np.ndarray:
+def _read_counts(path: Path, kind: str, column: pl.Series, name: str) -> np.ndarray:
     """Lookup counts as int64; each must be a whole number from 1 to MAX_COUNT."""
     if column.dtype == pl.Boolean or not (column.dtype.is_numeric() or column.dtype == pl.String):
-        raise BadInput(f"{path}: column `count` holds {column.dtype}; write counts as whole numbers of lookups")
+        raise BadInput(f"{path}: column `{name}` holds {column.dtype}; write counts as whole numbers of lookups")
     values = column.cast(pl.Float64, strict=False)
     bad = (values.is_null() | values.is_nan() | (values < 1) | (values > MAX_COUNT) | (values != values.floor())).fill_null(True)
     if bad.any():
@@ -369,16 +476,17 @@ def _read_counts(path: Path, kind: str, column: pl.Series) -> np.ndarray:
     return values.cast(pl.Int64).to_numpy()
 
 
-def _read_table(path: Path, kind: str, encoding: str, want_counts: bool) -> tuple[list[bytes], np.ndarray | None]:
+def _read_table(path: Path, kind: str, settings: CorpusSettings, want_counts: bool) -> tuple[list[bytes], np.ndarray | None]:
+    encoding = settings.key_encoding
     if encoding == "bytes" and kind != "parquet":
         raise BadInput(
             f"{path}: key_encoding \"bytes\" reads one-key-a-line files and Parquet tables; a {kind} file holds text: "
             f"use key_encoding = \"utf-8\", or convert the file"
         )
-    frame = _read_frame(path, kind, want_counts)
+    frame = _read_frame(path, kind, settings, want_counts)
     key_column = frame["key"]
     if key_column.dtype not in (pl.String, pl.Binary):
-        raise BadInput(f"{path}: column `key` holds {key_column.dtype}, expected text; write keys as strings")
+        raise BadInput(f"{path}: column `{settings.key_column}` holds {key_column.dtype}, expected text; write keys as strings")
     nulls = key_column.is_null()
     if nulls.any():
         place = _place(path, kind, int(nulls.arg_true()[0]))
@@ -391,7 +499,7 @@ def _read_table(path: Path, kind: str, encoding: str, want_counts: bool) -> tupl
                 f"{path}: {_place(path, kind, bad)} holds a key that is not valid UTF-8; fix the key, or read keys "
                 f"as raw bytes with key_encoding = \"bytes\" (--key-encoding bytes)"
             )
-    counts = _read_counts(path, kind, frame["count"]) if "count" in frame.columns else None
+    counts = _read_counts(path, kind, frame["count"], settings.count_column) if "count" in frame.columns else None
     return keys, counts
 
 
@@ -418,7 +526,7 @@ def read_source(path: Path, settings: CorpusSettings, want_counts: bool) -> RawS
     if kind == "lines":
         keys, counts = _read_lines(path, path.read_bytes(), settings.key_encoding), None
     else:
-        keys, counts = _read_table(path, kind, settings.key_encoding, want_counts)
+        keys, counts = _read_table(path, kind, settings, want_counts)
     _check_lengths(path, kind, keys, settings.max_key_bytes)
     return RawSource(keys, counts, len(keys))
 

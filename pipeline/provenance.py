@@ -10,20 +10,13 @@ import dataclasses
 import datetime as dt
 import json
 import os
-from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 
 import xxhash
 
+from tamis import tool_version
 from tamis.config import BuildConfig
 from tamis.corpus import Corpus
-
-
-def tool_version() -> str:
-    try:
-        return version("tamis")
-    except PackageNotFoundError:
-        return "0+unknown"
 
 
 def build_time() -> dt.datetime:
@@ -44,12 +37,14 @@ def corpus_digest(corpus: Corpus) -> str:
 
 
 def config_digest(config: BuildConfig) -> str:
-    """xxh3-128 of the settings that shape the artifact. File paths are left out, so moving a
-    corpus or a store does not change the artifact's bytes, and so is [compute]: the chunk size and
-    the machines a build runs on never change its result."""
+    """xxh3-128 of the settings that shape the artifact. File paths and the column names they are
+    read with are left out, so moving or renaming a corpus or a store does not change the
+    artifact's bytes, and so is [compute]: the chunk size and the machines a build runs on never
+    change its result."""
     settings = dataclasses.asdict(config)
     settings.pop("compute")
-    for section, key in (("corpus", "members"), ("corpus", "non_members"), ("store", "path")):
+    reading = (("corpus", "members"), ("corpus", "non_members"), ("corpus", "key_column"), ("corpus", "count_column"))
+    for section, key in (*reading, ("store", "path")):
         settings[section].pop(key)
     text = json.dumps(settings, sort_keys=True, default=lambda v: str(v) if isinstance(v, Path) else list(v))
     return xxhash.xxh3_128_hexdigest(text.encode())

@@ -298,12 +298,38 @@ def refuse_staging(store: Path, staging: Path, build_id: str) -> Path:
     return target
 
 
-def rollback(store: Path) -> int:
-    """Make the published version before the current one current again; returns it."""
+def require_store(store: Path) -> None:
+    """Raise StoreError unless `store` is an existing folder: the commands that read or change a
+    store (`tamis versions`, `tamis rollback`) must not take a mistyped path for an empty store."""
+    if not store.exists():
+        raise StoreError(f"no store at {store}: no such folder; check the path (a store is the folder a build publishes into)")
+    if not store.is_dir():
+        raise StoreError(f"store {store} is a file, not a folder; give the path of a store folder")
+
+
+def rollback(store: Path, to: int | None = None) -> int:
+    """Put a published version back in service; returns it.
+
+    Without `to`, the newest version older than the one in service; with `to`, that version, older
+    or newer than the one in service (so a rollback can be undone).
+    """
+    require_store(store)
     with store_lock(store):
         current = current_version(store)
-        older = [v for v in published_versions(store) if current is None or v < current]
-        if not older:
-            raise StoreError(f"{store}: no published version older than {current} to roll back to")
-        set_current(store, older[-1])
-        return older[-1]
+        versions = published_versions(store)
+        if to is not None:
+            if to not in versions:
+                listed = ", ".join(map(str, versions)) or "none"
+                raise StoreError(f"{store}: version {to} is not published here (published: {listed}); pick one of those")
+            chosen = to
+        elif current is None:
+            raise StoreError(f"{store}: no version is in service, so there is nothing to roll back from; publish a build first")
+        else:
+            older = [v for v in versions if v < current]
+            if not older:
+                raise StoreError(
+                    f"{store}: version {current} is the oldest published version; there is no older one to roll back to"
+                )
+            chosen = older[-1]
+        set_current(store, chosen)
+        return chosen

@@ -48,7 +48,7 @@ def test_missing_paths_say_which_option_to_pass():
 def test_overrides_replace_only_given_values():
     config = with_overrides(BuildConfig(), target={"fpr": 0.05}, corpus={"members": None})
     assert config.target.fpr == 0.05 and config.corpus == BuildConfig().corpus
-    with pytest.raises(ConfigError, match="target.fpr must be between"):
+    with pytest.raises(ConfigError, match="option --target-fpr must be between"):
         with_overrides(BuildConfig(), target={"fpr": 2.0})
 
 

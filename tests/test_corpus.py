@@ -118,6 +118,65 @@ def test_missing_column_null_key_overlong_key_and_missing_file(tmp_path):
         read_source(tmp_path / "absent.txt", SETTINGS, want_counts=True)
 
 
+# --- which columns are read --------------------------------------------------------------------
+
+
+def _table(path: Path, frame: dict) -> Path:
+    {".csv": pl.DataFrame(frame).write_csv, ".parquet": pl.DataFrame(frame).write_parquet,
+     ".ndjson": pl.DataFrame(frame).write_ndjson}[path.suffix](path)
+    return path
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".parquet", ".ndjson"])
+def test_counts_under_another_name_are_refused_until_named(tmp_path, suffix):
+    path = _table(tmp_path / f"lookups{suffix}", {"key": ["ash", "birch"], "lookups": [3, 1]})
+    with pytest.raises(BadInput) as refused:
+        read_source(path, SETTINGS, want_counts=True)
+    said = str(refused.value)
+    assert "no `count` column, but column `lookups` holds numbers" in said
+    assert "--count-column lookups" in said and "--count-column ''" in said
+    named = read_source(path, CorpusSettings(count_column="lookups"), want_counts=True)
+    assert named.keys == [b"ash", b"birch"] and named.counts.tolist() == [3, 1]
+    uncounted = read_source(path, CorpusSettings(count_column=""), want_counts=True)
+    assert uncounted.keys == [b"ash", b"birch"] and uncounted.counts is None
+
+
+def test_a_column_that_holds_no_numbers_is_no_count_column(tmp_path):
+    path = _table(tmp_path / "lookups.csv", {"key": ["ash", "birch"], "note": ["kept", "12a"]})
+    source = read_source(path, SETTINGS, want_counts=True)
+    assert source.keys == [b"ash", b"birch"] and source.counts is None
+    # the members' table is read for its keys only: other columns do not matter there
+    counted = _table(tmp_path / "members.csv", {"key": ["ash"], "lookups": [3]})
+    assert read_source(counted, SETTINGS, want_counts=False).keys == [b"ash"]
+
+
+def test_a_named_count_column_that_is_missing_is_refused(tmp_path):
+    path = _table(tmp_path / "lookups.parquet", {"key": ["ash"], "count": [3]})
+    with pytest.raises(BadInput, match=r"no `hits` column for the lookup counts \(columns: key, count\).*--count-column NAME"):
+        read_source(path, CorpusSettings(count_column="hits"), want_counts=True)
+
+
+def test_a_key_column_of_another_name_is_read_when_named(tmp_path):
+    path = _table(tmp_path / "lookups.ndjson", {"handle": ["ash", "birch"], "count": [2, 5]})
+    with pytest.raises(BadInput, match=r"no `key` column \(columns: handle, count\).*--key-column NAME"):
+        read_source(path, SETTINGS, want_counts=True)
+    source = read_source(path, CorpusSettings(key_column="handle"), want_counts=True)
+    assert source.keys == [b"ash", b"birch"] and source.counts.tolist() == [2, 5]
+    with pytest.raises(ValueError, match="must be different columns"):
+        CorpusSettings(key_column="count")
+
+
+def test_a_column_name_given_twice_is_refused(tmp_path):
+    csv_path = tmp_path / "twice.csv"
+    csv_path.write_text("key,key,count\nash,birch,1\n")
+    with pytest.raises(BadInput, match=r"`key` is given twice \(columns: key, key, count\).*own name"):
+        read_source(csv_path, SETTINGS, want_counts=True)
+    ndjson_path = tmp_path / "twice.ndjson"
+    ndjson_path.write_text('{"key": "ash", "count": 1}\n{"key": "ash", "key": "birch", "count": 2}\n')
+    with pytest.raises(BadInput, match=r"`key` is given twice in one object"):
+        read_source(ndjson_path, SETTINGS, want_counts=True)
+
+
 def test_duplicates_merge_with_counts_summed():
     keys, counts = merge_duplicates([b"a", b"b", b"a", b"c", b"b"], np.array([1, 2, 3, 4, 5]))
     assert keys == [b"a", b"b", b"c"]

@@ -104,7 +104,7 @@ def test_a_build_the_gate_refuses_keeps_the_current_version(demo, tmp_path):
     drift = report["drift"]
     assert drift["status"] == "evaluated" and drift["current_version"] == 1 and drift["members_missed"] == 0
     assert drift["heldout_fpr"] == _report(demo)["heldout"]["fpr"]
-    assert "in service: version 1 misses 0 of today's members" in done.stdout
+    assert "in service when built: version 1, which misses 0 of today's members" in done.stdout
 
 
 def test_bad_input_exits_2_with_one_line_and_writes_nothing(demo, tmp_path):

@@ -96,7 +96,7 @@ def test_rollback_goes_back_one_version_and_refuses_past_the_first(tmp_path):
         _publish(store, f"b{i}")
     assert publish.rollback(store) == 1
     assert publish.current_version(store) == 1
-    with pytest.raises(publish.StoreError, match="no published version older"):
+    with pytest.raises(publish.StoreError, match="is the oldest published version"):
         publish.rollback(store)
 
 

@@ -110,7 +110,21 @@ def test_show_prints_the_page_path(builds, capsys):
     assert cli.main(["show", str(store)]) == 0
     out = capsys.readouterr().out
     assert f"report page: {store / str(second.version) / REPORT_PAGE_NAME}" in out
-    assert "in service: version 1 misses 0 of today's members" in out
+    # the report's drift line is the state when the build ran; the store's state now follows it
+    assert "in service when built: version 1, which misses 0 of today's members" in out
+    assert f"in service now: version {second.version} of store {store} (this version)" in out
+    # the demo corpus has lookup counts: the rate is by lookups, and says so
+    measured = second.report["heldout"]
+    assert f"measured on {measured['lookups']:,} lookups of {measured['keys']:,} held-out keys (the rate is by lookups)" in out
+
+
+def test_show_on_an_older_version_names_the_version_in_service_now(builds, capsys):
+    first, second = builds
+    store = second.folder.parent
+    assert cli.main(["show", str(first.folder / "artifact.tamis")]) == 0
+    out = capsys.readouterr().out
+    assert "in service when built: none (this build found no version in service)" in out
+    assert f"in service now: version {second.version} of store {store} (this artifact is version {first.version})" in out
 
 
 @pytest.mark.parametrize("damage", ["cut", "not json", "fields missing"])
