@@ -4,7 +4,8 @@
       -> serve_schedule(CONFIG)
            load and check the config (a bad one fails here, before anything starts)
            PREFECT_API_URL set?  use that server
-                          unset? start `prefect server start` on a free loopback port as a child
+                          unset? start `prefect server start` on a free loopback port as a child,
+                                 under a guard that ends it when this process ends (tamis.flows.server_guard)
            register the deployment  tamis-nightly/<config stem>  (cron, timezone, config_path)
            run the runner that executes its flow runs, until Ctrl-C, SIGTERM or `stop_after_runs`
            on the way out: pause the deployment's schedule, stop the server child
@@ -55,6 +56,7 @@ from prefect.states import Failed, State
 from prefect.types.entrypoint import EntrypointType
 
 from tamis.flows.build import BuildOutcome, flow_for
+from tamis.flows.server_guard import guard
 from tamis.config import BuildConfig, ConfigError, load_config, require_paths
 from tamis.errors import BadInput
 from tamis.progress import StageEvent
@@ -231,6 +233,7 @@ def local_server(home: Path, timeout: float = SERVER_STARTUP_SECONDS) -> Iterato
         # its own process group: a Ctrl-C in the terminal reaches only us, and we stop the server last
         server = subprocess.Popen(command, stdin=subprocess.DEVNULL, stdout=log_file, stderr=subprocess.STDOUT,
                                   env=env, process_group=0)
+    guard(server.pid, group=True)  # the server group ends with this process, even one killed with SIGKILL
     try:
         api = PrefectApi(url=f"http://127.0.0.1:{port}/api", server_pid=server.pid, log=log)
         wait_until_healthy(api.url, server, log, timeout)

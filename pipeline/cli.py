@@ -46,11 +46,13 @@ def _demo_config_path() -> Path:
 def _run_build(config) -> int:
     _prepare_prefect(PREFECT_BUILD_DEFAULTS)
     from tamis.flows.build import BuildFailed, check_inputs, flow_for
+    from tamis.flows.server_guard import start_temporary_server
     from tamis.progress import progress_display
 
     started = time.perf_counter()
     check_inputs(config)  # bad paths fail in a second, before Prefect starts its server
     build = flow_for(config)
+    start_temporary_server()  # under a guard: it ends with this process, even one killed with SIGKILL
     try:
         with progress_display(sys.stderr) as progress:
             outcome = build(config, progress=progress)
