@@ -159,9 +159,11 @@ def fill_chunk(chunk: Chunk, filters: list[RegionFilter], hash_seed: int) -> lis
 
 
 @_stage("answers")
-def answer_chunk(chunk: Chunk, path: Path) -> np.ndarray:
-    """The answers of the artifact at `path`, opened as a service opens it, for one chunk of keys."""
-    return open_filter(path).contains_many(chunk.items)
+def answer_chunk(chunk: Chunk, path: Path, every_path: bool) -> np.ndarray:
+    """The answers of the artifact at `path`, opened as a service opens it, for one chunk of keys:
+    through every answer path (keys, paths), or through `contains_many` only (keys,)."""
+    opened = open_filter(path)
+    return verify.every_path_answers(opened, chunk.items) if every_path else opened.contains_many(chunk.items)
 
 
 def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: corpus_stage.KeySet, spec: dict, config: BuildConfig) -> dict[str, np.ndarray]:
@@ -232,10 +234,13 @@ def write_package(path: Path, spec: dict, forest, plan, filters, hash_seed: int,
 
 
 def verify_package(run_chunks: ChunkMap, path: Path, corpus, config: BuildConfig) -> verify.Verification:
-    """Every member and every held-out key through the written artifact, chunk by chunk."""
-    parts = {"members": corpus.members, "heldout": corpus.heldout.keys}
-    answers = map_parts(run_chunks, answer_chunk, parts, config.compute.chunk_keys, path)
-    return verify.verification(answers["members"], answers["heldout"], corpus.heldout, corpus.has_counts, config.gate.confidence)
+    """Every member and a sample of held-out keys through every answer path of the written
+    artifact, and every held-out key through the service's path, chunk by chunk."""
+    every_path = {"members": corpus.members, "sample": verify.path_sample(corpus.heldout.keys)}
+    answers = map_parts(run_chunks, answer_chunk, every_path, config.compute.chunk_keys, path, True)
+    served = map_parts(run_chunks, answer_chunk, {"heldout": corpus.heldout.keys}, config.compute.chunk_keys, path, False)
+    return verify.verification(answers["members"], answers["sample"], served["heldout"], corpus.heldout,
+                               corpus.has_counts, config.gate.confidence)
 
 
 @_stage("drift")

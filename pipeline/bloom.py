@@ -213,7 +213,7 @@ class BloomFilter:
 
     def query_hashes(self, key_hashes: KeyHashes) -> np.ndarray:
         """`query` for keys already hashed with this filter's seed."""
-        if compiled.ENABLED:  # the same positions, one key at a time, stopping at its first clear bit
+        if compiled.in_use():  # the same positions, one key at a time, stopping at its first clear bit
             answers = np.empty(len(key_hashes), dtype=bool)
             compiled.bloom_query(key_hashes.low, key_hashes.high, self.bits, self.hashes, self.words, answers)
             return answers

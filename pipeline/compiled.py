@@ -10,7 +10,9 @@ the same uint64 probe arithmetic (tests/test_compiled.py compares both paths).
 
 `ENABLED` is true when numba imports and the environment variable TAMIS_NUMPY_ONLY is unset
 (or "0"); otherwise this module defines nothing else and the numpy path runs alone, so the
-loader still needs only numpy, xxhash and msgpack. Kernels compile on first use (`cache=True`
+loader still needs only numpy, xxhash and msgpack. `in_use()` is the one switch the callers
+read: the kernels run when ENABLED, unless the calling thread asked for the numpy reference for a
+while (`numpy_reference()`, as the verify stage does to answer through both paths). Kernels compile on first use (`cache=True`
 keeps the machine code in numba's cache, beside this file or in the user's cache folder when
 that is read-only); `warm_up()` compiles them all at once, which `open_filter` does.
 """
@@ -18,6 +20,9 @@ that is read-only); `warm_up()` compiles them all at once, which `open_filter` d
 from __future__ import annotations
 
 import os
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 
 import numpy as np
 
@@ -36,6 +41,26 @@ def _numba():
 
 _NUMBA = _numba()
 ENABLED = _NUMBA is not None
+
+# Per thread, so that one thread answering through the numpy reference leaves every other
+# thread's path as it was.
+_thread = threading.local()
+
+
+def in_use() -> bool:
+    """True when this thread's batch path runs the compiled kernels."""
+    return ENABLED and not getattr(_thread, "numpy_reference", False)
+
+
+@contextmanager
+def numpy_reference() -> Iterator[None]:
+    """Run the numpy reference path in this thread while the context lasts."""
+    before = getattr(_thread, "numpy_reference", False)
+    _thread.numpy_reference = True
+    try:
+        yield
+    finally:
+        _thread.numpy_reference = before
 
 if ENABLED:
     _jit = _NUMBA.njit(cache=True, nogil=True, boundscheck=False)

@@ -279,7 +279,7 @@ def featurize_columns(data: np.ndarray, offsets: np.ndarray, spec: Mapping | Fea
     check_packed(data, offsets)
     n = len(offsets) - 1
     columns = np.empty((layout.count, n), dtype=np.float32)
-    if compiled.ENABLED:
+    if compiled.in_use():
         compiled.featurize_into(data, offsets, *layout.kernel_tables, columns)
         return columns
     for start in range(0, n, _CHUNK_KEYS):

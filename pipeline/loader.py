@@ -50,6 +50,11 @@ LOG = logging.getLogger(__name__)
 # do not depend on it.
 LOOKUP_CHUNK_KEYS = 16_384
 
+# The ways an opened filter answers, each its own code for the same answers: the batch path in
+# numpy (the reference), the same batch path in compiled kernels (when numba is installed), and the
+# single-key path in plain Python. `contains_many` takes the compiled batch path when it is there.
+NUMPY_PATH, COMPILED_PATH, SINGLE_KEY_PATH = "numpy", "compiled", "single"
+
 OnError = Literal["raise", "maybe"]
 ON_ERROR_CHOICES = ("raise", "maybe")
 
@@ -84,6 +89,11 @@ class PackedKeys:
     @property
     def data(self) -> np.ndarray:
         return np.frombuffer(self.buffer, dtype=np.uint8)
+
+    def split(self) -> list[bytes]:
+        """The keys one by one."""
+        bounds = self.offsets.tolist()
+        return [self.buffer[start:stop] for start, stop in zip(bounds, bounds[1:])]
 
 
 def _bytes_of(keys: Sequence[Any]) -> list[bytes]:
@@ -232,7 +242,7 @@ class MembershipFilter:
     def _scores(self, data: np.ndarray, offsets: np.ndarray) -> np.ndarray:
         """Integer scores of packed keys; compiled, features and trees run key by key (the same
         scores as featurize_columns then score_columns, without the feature matrix)."""
-        if not compiled.ENABLED:
+        if not compiled.in_use():
             return score_columns(self.forest, featurize_columns(data, offsets, self._layout))
         scores = np.empty(len(offsets) - 1, dtype=np.int64)
         compiled.score_packed(data, offsets, *self._layout.kernel_tables, self._layout.count,
@@ -274,6 +284,26 @@ class MembershipFilter:
 
     def __contains__(self, key: str | bytes) -> bool:
         return self.contains(key)
+
+    def answers_through(self, path: str, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
+        """`contains_many` of `keys` computed through one named answer path of `answer_paths()`,
+        so that a check can compare the paths; a service has no need of it."""
+        if path not in answer_paths():
+            raise ValueError(f"answer path {path!r} is not available here; the paths are {list(answer_paths())}")
+        if path == SINGLE_KEY_PATH:
+            return np.fromiter(map(self.contains, pack_batch(keys).split()), dtype=bool)
+        if path == NUMPY_PATH:
+            with compiled.numpy_reference():
+                return self.contains_many(keys)
+        return self.contains_many(keys)
+
+
+def answer_paths() -> tuple[str, ...]:
+    """The answer paths an opened filter has in this process: numpy and single-key always,
+    compiled when numba is installed and enabled."""
+    if compiled.ENABLED:
+        return (NUMPY_PATH, COMPILED_PATH, SINGLE_KEY_PATH)
+    return (NUMPY_PATH, SINGLE_KEY_PATH)
 
 
 @dataclass(frozen=True, eq=False)

@@ -68,6 +68,7 @@ def build_report(
         },
         "heldout": verification.heldout.as_report(),
         "false_negatives": verification.false_negatives,
+        "answer_paths": verification.paths.as_report(),
         "size": {
             "total_bytes": total_bytes,
             "model_bytes": choice.forest.nbytes,

@@ -427,7 +427,7 @@ def score_columns(forest: Forest, columns: np.ndarray) -> np.ndarray:
     scores = np.full(columns.shape[1], forest.bias, dtype=np.int64)
     if forest.trees == 0:
         return scores
-    if compiled.ENABLED:  # the kernel reads rows, so each chunk is transposed in cache first
+    if compiled.in_use():  # the kernel reads rows, so each chunk is transposed in cache first
         for start in range(0, columns.shape[1], CHUNK_ROWS):
             rows = np.ascontiguousarray(columns[:, start : start + CHUNK_ROWS].T)
             compiled.score_rows(rows, *forest._levels.kernel_arrays, forest.bias, scores[start : start + len(rows)])
@@ -441,7 +441,7 @@ def score_columns(forest: Forest, columns: np.ndarray) -> np.ndarray:
 def score_batch(forest: Forest, X: np.ndarray) -> np.ndarray:
     """Integer scores (int64, shape (n,)) of the rows of a float32 matrix X of shape (n, d)."""
     _check_matrix(forest, X)
-    if compiled.ENABLED and forest.trees:
+    if compiled.in_use() and forest.trees:
         scores = np.empty(len(X), dtype=np.int64)  # the kernel writes bias + leaf sum into every row
         compiled.score_rows(np.ascontiguousarray(X), *forest._levels.kernel_arrays, forest.bias, scores)
         return scores

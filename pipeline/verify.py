@@ -7,7 +7,8 @@ rate measured here is an honest estimate of the rate the service will see on loo
 Gate rules (each refusal starts with the rule's name; the thresholds are `config.GateSettings`):
 
     min_heldout          before training: the held-out part can bound the rate at the target at all
-    false_negatives      every member answers "maybe"
+    false_negatives      every member answers "maybe", through every answer path of the loader
+    answer_paths         the paths answer alike: every member and a sample of held-out keys
     fpr_upper            the held-out rate's upper confidence bound <= target * (1 + fpr_slack)
     max_artifact_bytes   the artifact file is at most this large
     max_size_growth      at most this share more bytes than the version in service
@@ -25,7 +26,7 @@ from scipy import stats
 from tamis.config import GateSettings
 from tamis.corpus import KeySet
 from tamis.errors import BadInput
-from tamis.loader import MembershipFilter
+from tamis.loader import MembershipFilter, answer_paths
 
 
 @dataclass(frozen=True)
@@ -157,22 +158,66 @@ def require_heldout(heldout: KeySet, weighted: bool, target: float, settings: Ga
     )
 
 
+# Held-out keys answered through every answer path (all of them answer through the service's own
+# path for the rate): a path that differs on a share p of non-members shows in the sample with
+# probability 1 - (1 - p)^100,000, 99.995% for p = 0.01%. Every member goes through every path.
+PATH_SAMPLE_KEYS = 100_000
+
+
+def path_sample(keys: list[bytes]) -> list[bytes]:
+    """At most PATH_SAMPLE_KEYS of `keys`, evenly spaced, to answer through every answer path."""
+    return keys[:: max(1, -(-len(keys) // PATH_SAMPLE_KEYS))]
+
+
+def every_path_answers(loaded: MembershipFilter, keys: list[bytes]) -> np.ndarray:
+    """Each key's answer through each answer path of the loader, (keys, paths) in `answer_paths()` order."""
+    return np.column_stack([loaded.answers_through(path, keys) for path in answer_paths()]).reshape(len(keys), -1)
+
+
+@dataclass(frozen=True)
+class PathAgreement:
+    """Members and sampled non-members answered through every answer path, and how many of each got
+    different answers from two paths."""
+
+    paths: tuple[str, ...]
+    members: int
+    nonmembers: int
+    members_differing: int
+    nonmembers_differing: int
+
+    def as_report(self) -> dict:
+        return {"paths": list(self.paths), "members": self.members, "nonmembers": self.nonmembers,
+                "members_differing": self.members_differing, "nonmembers_differing": self.nonmembers_differing}
+
+
+def _differing(answers: np.ndarray) -> int:
+    return int(np.count_nonzero(answers.any(axis=1) != answers.all(axis=1)))
+
+
 @dataclass(frozen=True)
 class Verification:
     false_negatives: int
     members_checked: int
     heldout: Measurement
+    paths: PathAgreement
 
 
-def verification(member_answers: np.ndarray, heldout_answers: np.ndarray, heldout: KeySet, weighted: bool, confidence: float) -> Verification:
-    """The verdict on a filter from its answers to every member and to every held-out key."""
-    false_negatives = int(len(member_answers) - np.count_nonzero(member_answers))
-    return Verification(false_negatives, len(member_answers), measure_fpr(heldout_answers, heldout, weighted, confidence))
+def verification(member_answers: np.ndarray, sample_answers: np.ndarray, heldout_answers: np.ndarray,
+                 heldout: KeySet, weighted: bool, confidence: float) -> Verification:
+    """The verdict on a filter from its answers: to every member and to a sample of held-out keys
+    through every answer path ((keys, paths), `every_path_answers`), and to every held-out key
+    through the service's path. A member is a false negative when any path answers it "no"."""
+    false_negatives = int(len(member_answers) - np.count_nonzero(member_answers.all(axis=1)))
+    paths = PathAgreement(answer_paths(), len(member_answers), len(sample_answers),
+                          _differing(member_answers), _differing(sample_answers))
+    return Verification(false_negatives, len(member_answers), measure_fpr(heldout_answers, heldout, weighted, confidence), paths)
 
 
 def check_filter(loaded: MembershipFilter, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Verification:
-    """Query every member and every held-out key through an opened filter."""
-    return verification(loaded.contains_many(members), loaded.contains_many(heldout.keys), heldout, weighted, confidence)
+    """Query every member and a sample of held-out keys through every answer path of an opened
+    filter, and every held-out key through `contains_many`."""
+    return verification(every_path_answers(loaded, members), every_path_answers(loaded, path_sample(heldout.keys)),
+                        loaded.contains_many(heldout.keys), heldout, weighted, confidence)
 
 
 @dataclass(frozen=True)
@@ -201,9 +246,25 @@ class GateCheck:
 
 def _check_false_negatives(verification: Verification) -> GateCheck:
     missed = verification.false_negatives
+    paths = ", ".join(verification.paths.paths)
     if missed:
-        return GateCheck("false_negatives", False, missed, 0, f"{missed} members answered no")
-    return GateCheck("false_negatives", True, 0, 0, f"all {verification.members_checked:,} members answer maybe")
+        return GateCheck("false_negatives", False, missed, 0, f"{missed} members answered no (through {paths})")
+    return GateCheck("false_negatives", True, 0, 0, f"all {verification.members_checked:,} members answer maybe through {paths}")
+
+
+def _check_answer_paths(agreement: PathAgreement) -> GateCheck:
+    differing = agreement.members_differing + agreement.nonmembers_differing
+    words = (
+        f"{agreement.members:,} members and {agreement.nonmembers:,} held-out keys through {', '.join(agreement.paths)}"
+    )
+    if differing:
+        return GateCheck(
+            "answer_paths", False, differing, 0,
+            f"{agreement.members_differing:,} members and {agreement.nonmembers_differing:,} held-out keys get different "
+            f"answers from two answer paths (of {words}); every path must answer every key alike: this is a defect of "
+            f"tamis (report it with the artifact), or set TAMIS_NUMPY_ONLY=1 to build and serve on the numpy path",
+        )
+    return GateCheck("answer_paths", True, 0, 0, f"{words} answer alike")
 
 
 def _check_fpr_upper(verification: Verification, target: float, fpr_slack: float) -> GateCheck:
@@ -283,6 +344,7 @@ def gate_checks(
     """Every gate rule checked after the artifact is written, in a fixed order."""
     return [
         _check_false_negatives(verification),
+        _check_answer_paths(verification.paths),
         _check_fpr_upper(verification, target, settings.fpr_slack),
         _check_artifact_bytes(total_bytes, settings.max_artifact_bytes),
         _check_size_growth(total_bytes, settings.max_size_growth, baseline),

@@ -47,7 +47,7 @@ from tamis.model import (  # noqa: E402
 from tamis.package import package_artifact  # noqa: E402
 from tamis.regions import RegionSettings, plan_regions, region_of  # noqa: E402
 from tamis.trees import Forest, score_batch  # noqa: E402
-from tamis.verify import check_filter  # noqa: E402
+from tamis.verify import check_filter, path_sample  # noqa: E402
 
 TARGET_FPR = 0.02
 REGIONS = RegionSettings(segments=256)
@@ -215,7 +215,9 @@ def test_a_build_on_the_cluster_keeps_the_invariants_and_the_bytes_of_a_local_bu
     assert ran["featurize_chunk"] == chunks(member_count, trained, split["validation"])
     assert ran["score_chunk"] == chunks(member_count, split["validation"])
     assert ran["fill_chunk"] == chunks(member_count)
-    assert ran["answer_chunk"] == chunks(member_count, split["heldout"])
+    # members and a sample of held-out keys through every answer path, every held-out key through the service's
+    sampled = len(path_sample(list(range(split["heldout"]))))
+    assert ran["answer_chunk"] == chunks(member_count, sampled) + chunks(split["heldout"])
     assert len(chosen) == 1
 
     monkeypatch.setattr(build, "fit_model", lambda *args: chosen[0])

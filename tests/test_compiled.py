@@ -160,3 +160,29 @@ def test_the_environment_variable_forces_the_numpy_path():
         env = dict(os.environ, **{compiled.NUMPY_ONLY_VARIABLE: value})
         done = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True)
         assert done.stdout.strip() == expected
+
+
+def test_the_numpy_answer_path_runs_no_kernel_and_leaves_other_threads_compiled(monkeypatch):
+    import threading
+    from pathlib import Path
+
+    artifact = Path(__file__).parent / "data" / "format-1.0.tamis"
+    loaded = open_filter(artifact)
+    keys = [b"%d" % i for i in range(2000)]
+    expected = loaded.contains_many(keys)
+
+    def no_kernel(*args):
+        raise AssertionError("a compiled kernel ran on the numpy path")
+
+    for name in ("featurize_into", "score_rows", "score_packed", "bloom_query"):
+        monkeypatch.setattr(compiled, name, no_kernel)
+    assert loaded.answers_through("numpy", keys).tolist() == expected.tolist()
+    with pytest.raises(AssertionError, match="compiled kernel ran"):
+        loaded.answers_through("compiled", keys)
+    seen_elsewhere = []
+    with compiled.numpy_reference():
+        worker = threading.Thread(target=lambda: seen_elsewhere.append(compiled.in_use()))
+        worker.start()
+        worker.join()
+        assert not compiled.in_use()
+    assert seen_elsewhere == [True] and compiled.in_use()

@@ -12,6 +12,7 @@ from tamis.errors import BadInput
 from tamis.verify import (
     Baseline,
     Measurement,
+    PathAgreement,
     Verification,
     clopper_pearson_upper,
     gate_checks,
@@ -21,13 +22,14 @@ from tamis.verify import (
 )
 
 TARGET = 0.01
-RULES = ["false_negatives", "fpr_upper", "max_artifact_bytes", "max_size_growth", "max_member_drop"]
+RULES = ["false_negatives", "answer_paths", "fpr_upper", "max_artifact_bytes", "max_size_growth", "max_member_drop"]
 
 
-def verification(false_negatives: int = 0, fpr_upper: float = 0.008) -> Verification:
+def verification(false_negatives: int = 0, fpr_upper: float = 0.008, differing: tuple[int, int] = (0, 0)) -> Verification:
     held = Measurement(keys=50_000, lookups=50_000, false_positive_keys=300, false_positive_lookups=300,
                        fpr=0.006, fpr_upper=fpr_upper, confidence=0.95, effective_sample=50_000.0)
-    return Verification(false_negatives=false_negatives, members_checked=10_000, heldout=held)
+    paths = PathAgreement(("numpy", "compiled", "single"), 10_000, 50_000, *differing)
+    return Verification(false_negatives=false_negatives, members_checked=10_000, heldout=held, paths=paths)
 
 
 def checks(total_bytes: int = 10_000, members: int = 10_000, baseline: Baseline | None = None, check=None, **gate):
@@ -49,7 +51,13 @@ def test_a_good_build_passes_every_rule_in_order():
 
 
 def test_each_refusal_starts_with_its_rule_name():
-    assert reasons(check=verification(false_negatives=3)) == ["false_negatives: 3 members answered no"]
+    assert reasons(check=verification(false_negatives=3)) == [
+        "false_negatives: 3 members answered no (through numpy, compiled, single)"
+    ]
+    assert reasons(check=verification(differing=(2, 0)))[0].startswith(
+        "answer_paths: 2 members and 0 held-out keys get different answers from two answer paths"
+    )
+    assert reasons(check=verification(differing=(0, 1)))[0].startswith("answer_paths: 0 members and 1 held-out keys")
     assert reasons(check=verification(fpr_upper=0.0101))[0].startswith("fpr_upper: ")
     assert reasons(total_bytes=10_001, max_artifact_bytes=10_000)[0].startswith("max_artifact_bytes: ")
     assert reasons(total_bytes=15_001, baseline=IN_SERVICE)[0].startswith("max_size_growth: ")
@@ -57,7 +65,7 @@ def test_each_refusal_starts_with_its_rule_name():
 
 
 def test_several_failed_rules_are_all_named():
-    found = reasons(check=verification(false_negatives=1, fpr_upper=0.5), total_bytes=40_000, members=1_000,
+    found = reasons(check=verification(false_negatives=1, fpr_upper=0.5, differing=(1, 0)), total_bytes=40_000, members=1_000,
                     baseline=IN_SERVICE, max_artifact_bytes=20_000)
     assert [r.split(":")[0] for r in found] == RULES
 

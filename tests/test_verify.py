@@ -1,13 +1,75 @@
-"""Verify stage's statistics against reference formulas and scipy."""
+"""Verify stage: every answer path checked on every member, and the statistics against reference
+formulas and scipy."""
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
 from scipy import stats
 
+from golden_build import write_fixed_corpus
+from tamis.config import GateSettings
 from tamis.corpus import KeySet
-from tamis.verify import aim_fpr, clopper_pearson_upper, effective_sample_size, measure_fpr, needed_heldout
+from tamis.loader import MembershipFilter, answer_paths, open_filter
+from tamis.verify import (
+    aim_fpr,
+    check_filter,
+    clopper_pearson_upper,
+    effective_sample_size,
+    gate_checks,
+    measure_fpr,
+    needed_heldout,
+    refusal_reasons,
+)
+
+# The format's reference artifact holds the members of golden_build's fixed corpus.
+REFERENCE_ARTIFACT = Path(__file__).parent / "data" / "format-1.0.tamis"
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory):
+    members_path, others_path = write_fixed_corpus(tmp_path_factory.mktemp("fixed"))
+    members = members_path.read_bytes().splitlines()
+    others = others_path.read_bytes().splitlines()
+    return {"members": members, "heldout": KeySet(others, np.ones(len(others), dtype=np.int64))}
+
+
+def _verdict(members, heldout) -> tuple:
+    checked = check_filter(open_filter(REFERENCE_ARTIFACT), members, heldout, False, 0.95)
+    reasons = refusal_reasons(gate_checks(checked, target=0.5, total_bytes=1, members=len(members),
+                                          settings=GateSettings(), baseline=None))
+    return checked, reasons
+
+
+def test_every_member_and_a_sample_of_non_members_go_through_every_answer_path(reference):
+    checked, reasons = _verdict(reference["members"], reference["heldout"])
+    assert checked.false_negatives == 0 and reasons == []
+    assert checked.paths.paths == answer_paths() and len(answer_paths()) >= 2
+    assert checked.paths.members == len(reference["members"])
+    assert checked.paths.nonmembers == len(reference["heldout"].keys)  # below the sample cap: all of them
+    assert checked.paths.members_differing == checked.paths.nonmembers_differing == 0
+
+
+def test_a_single_key_path_that_misses_a_member_is_refused(reference, monkeypatch):
+    # the batch path is right, the single-key path answers one member "no": the gate must see it
+    missed = reference["members"][17]
+    right = MembershipFilter.contains
+    monkeypatch.setattr(MembershipFilter, "contains", lambda self, key: key != missed and right(self, key))
+    checked, reasons = _verdict(reference["members"], reference["heldout"])
+    assert checked.false_negatives == 1 and checked.paths.members_differing == 1
+    assert [r.split(":")[0] for r in reasons] == ["false_negatives", "answer_paths"]
+
+
+def test_paths_that_differ_on_a_non_member_are_refused(reference, monkeypatch):
+    loaded = open_filter(REFERENCE_ARTIFACT)
+    said_no = [k for k, a in zip(reference["heldout"].keys, loaded.contains_many(reference["heldout"].keys)) if not a]
+    odd = said_no[3]
+    right = MembershipFilter.contains
+    monkeypatch.setattr(MembershipFilter, "contains", lambda self, key: key == odd or right(self, key))
+    checked, reasons = _verdict(reference["members"], reference["heldout"])
+    assert checked.false_negatives == 0 and checked.paths.nonmembers_differing == 1
+    assert len(reasons) == 1 and reasons[0].startswith("answer_paths: 0 members and 1 held-out keys get different answers")
 
 
 @pytest.mark.parametrize("x, n", [(0, 50), (3, 1000), (120, 10000), (999, 1000)])
