@@ -20,7 +20,7 @@ import os
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -30,18 +30,18 @@ from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
 from tamis import corpus as corpus_stage
-from tamis import publish, report, verify
+from tamis import publish, report, report_page, verify
 from tamis.config import BuildConfig, require_paths
 from tamis.drift import Drift, measure_drift
 from tamis.errors import BadInput
 from tamis.features import default_feature_spec, featurize
 from tamis.filters import RegionFilter, chunk_words, empty_filters, merge_words
 from tamis.loader import open_filter
-from tamis.model import fit_model, fit_model_on_cluster
+from tamis.model import ModelChoice, compile_trees, fit_model, fit_model_on_cluster
 from tamis.package import package_artifact
 from tamis.progress import Progress, StageEvent, no_progress
 from tamis.provenance import build_provenance
-from tamis.regions import plan_regions, region_of
+from tamis.regions import RegionPlan, plan_regions, region_of
 from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
 from tamis.trees import Forest, score_batch
 
@@ -50,6 +50,10 @@ STAGES = ("corpus", "features", "model", "regions", "filters", "package", "verif
 # Reading the corpus is the stage that touches files other systems write, often on a network
 # filesystem whose hiccups clear within seconds: three more tries over about 40 s, then give up.
 CORPUS_RETRY_DELAYS = (2, 8, 30)
+
+# The plain filter's artifact while the build compares it with the learned one (tamis.verify.PlainComparison);
+# one of the two is removed before the staging folder is published or refused.
+PLAIN_CANDIDATE_NAME = "plain-candidate.tamis"
 
 # Seconds to wait for a Dask scheduler to answer before calling its address wrong.
 CLUSTER_CONNECT_SECONDS = 15
@@ -219,6 +223,39 @@ def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, 
     return merge_words(filters, words)
 
 
+@dataclass(frozen=True)
+class Candidate:
+    """An artifact the build can publish: its model, its region plan, its filters (members inserted)
+    and the scores the plan was made from."""
+
+    choice: ModelChoice
+    plan: RegionPlan
+    filters: list[RegionFilter]
+    scores: ScoreSample
+
+
+def plain_candidate(run_chunks: ChunkMap, corpus, learned: Candidate, aim: float, config: BuildConfig) -> Candidate:
+    """The plain filter the learned artifact would replace: a forest of no trees (every key gets the
+    same score) and so one region holding every member, planned at the same aim, so that it would
+    be certified the same way. The region plan and the filter stage choose its filter as they
+    would for any region, and the same loader answers it."""
+    forest = compile_trees([], learned.choice.forest.features)
+    member_scores = np.full(len(corpus.members), forest.bias, dtype=np.int64)
+    validation_scores = np.full(len(corpus.validation.keys), forest.bias, dtype=np.int64)
+    plan = plan_regions(member_scores, validation_scores, corpus.validation.counts, aim, config.regions)
+    filters = fill_filters(run_chunks, corpus, member_scores, plan, config)
+    choice = replace(learned.choice, forest=forest, trees=0, auc=0.5, model_bytes=forest.nbytes,
+                     filter_bytes=sum(f.nbytes for f in filters), total_bytes=forest.nbytes + sum(f.nbytes for f in filters))
+    return Candidate(choice, plan, filters, ScoreSample(member_scores, validation_scores, corpus.validation.counts))
+
+
+def write_candidate(path: Path, spec: dict, candidate: Candidate, config: BuildConfig, provenance: dict) -> int:
+    """Write a candidate's artifact (no measured figures yet) and return its size in bytes."""
+    package_artifact(path, feature_spec=spec, forest=candidate.choice.forest, boundaries=candidate.plan.boundaries,
+                     region_filters=candidate.filters, hash_seed=config.filters.hash_seed, provenance=provenance)
+    return path.stat().st_size
+
+
 @_stage("package")
 def write_package(path: Path, spec: dict, forest, plan, filters, hash_seed: int, provenance: dict, measured: dict | None) -> None:
     package_artifact(
@@ -249,9 +286,21 @@ def measure_in_service(store: Path, corpus, config: BuildConfig) -> Drift:
 
 
 @_stage("report")
-def write_reports(staging: Path, summary: dict, scores: ScoreSample) -> None:
+def write_reports(staging: Path, summary: dict, scores: ScoreSample) -> dict[str, str]:
+    """report.json and the report page; returns the page's figures, so that the page can be
+    written again with the last timings without drawing them again."""
+    figures = report_page.draw_figures(summary, scores)
     publish.write_report(staging, summary)
-    write_report_page(staging, summary, scores)
+    write_report_page(staging, summary, figures)
+    return figures
+
+
+def finish_reports(folder: Path, summary: dict, figures: dict[str, str]) -> None:
+    """Rewrite both reports in their final folder, now that the artifact's path and the timings of
+    the report and publish stages are known (each file is replaced whole, so a crash leaves the
+    first version of it)."""
+    publish.write_report(folder, summary)
+    write_report_page(folder, summary, figures)
 
 
 def check_inputs(config: BuildConfig) -> None:
@@ -328,6 +377,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
     input that cannot be used (among it a held-out part too small for the target, found before any
     training) and BuildFailed when a stage fails otherwise.
     """
+    started = time.perf_counter()
     stages = _Stages(progress or no_progress)
     require_paths(config)
     store = config.store.path
@@ -352,12 +402,25 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
         plan, scores = choose_regions(stages.chunks("regions"), corpus, X, choice.forest, aim, config)
     with stages.stage("filters"):
         filters = fill_filters(stages.chunks("filters"), corpus, scores.member_scores, plan, config)
+        learned = Candidate(choice, plan, filters, scores)
+        plain = plain_candidate(stages.chunks("filters"), corpus, learned, aim, config)
 
     staging = publish.new_staging(store, provenance["build_id"])
     try:
         artifact = staging / publish.ARTIFACT_NAME
+        with stages.stage("package"):
+            # both candidates are written as they would ship, and the smaller compared before either is verified
+            comparison = verify.PlainComparison(
+                learned_bytes=write_candidate(artifact, spec, learned, config, provenance),
+                plain_bytes=write_candidate(staging / PLAIN_CANDIDATE_NAME, spec, plain, config, provenance),
+            )
+            chosen = plain if verify.publishes_plain(comparison, config.gate.when_model_does_not_pay) else learned
+            if chosen is plain:
+                os.replace(staging / PLAIN_CANDIDATE_NAME, artifact)
+            else:
+                os.unlink(staging / PLAIN_CANDIDATE_NAME)
+        choice, plan, filters, scores = chosen.choice, chosen.plan, chosen.filters, chosen.scores
         package_args = (artifact, spec, choice.forest, plan, filters, config.filters.hash_seed, provenance)
-        stages.run("package", write_package, *package_args, None)
         with stages.stage("verify"):
             checked = verify_package(stages.chunks("verify"), artifact, corpus, config)
         # the measured figures go into the header; sections are unchanged, so what was verified is what ships
@@ -374,6 +437,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 members=len(corpus.members),
                 settings=config.gate,
                 baseline=drift.baseline(),
+                comparison=comparison,
             )
             passed = not verify.refusal_reasons(checks)
             next_version = publish.next_version(store)
@@ -389,10 +453,12 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 total_bytes=total_bytes,
                 checks=checks,
                 drift=drift,
+                comparison=comparison,
+                published_plain=chosen is plain,
                 version=next_version if passed else None,
                 timings=stages.timings,
             )
-            stages.run("report", write_reports, staging, summary, scores)
+            figures = stages.run("report", write_reports, staging, summary, scores)
             with stages.stage("publish"):
                 if passed:
                     version = publish.publish_staging(store, staging, config.store.keep)
@@ -400,6 +466,9 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 else:
                     version = None
                     folder = publish.refuse_staging(store, staging, provenance["build_id"])
+            summary["paths"]["artifact"] = str(folder / publish.ARTIFACT_NAME)
+            summary["timings"] = {**stages.timings, "total": round(time.perf_counter() - started, 3)}
+            finish_reports(folder, summary, figures)
     except BaseException:
         publish.discard_staging(staging)  # nothing to remove once it was published or refused
         raise

@@ -90,6 +90,25 @@ def drift_text(drift: dict) -> str:
     )
 
 
+def plain_filter_text(plain: dict) -> str:
+    """One line on the learned artifact against the plain filter it would replace (both written
+    by the build, certified the same way); a plain warning when the model does not pay."""
+    learned, bytes_ = plain["learned_bytes"], plain["plain_bytes"]
+    if plain["model_pays"]:
+        return f"  a plain filter (no model) certified the same way: {bytes_:,} bytes; the model saves {1 - learned / bytes_:.1%}"
+    if plain["published"] == "plain":
+        outcome = "the plain filter is published instead"
+    elif plain["when_model_does_not_pay"] == "refuse":
+        outcome = "the gate refuses the build"
+    else:
+        outcome = "the learned artifact is published anyway"
+    return (
+        f"  WARNING the model does not pay: the learned artifact takes {learned:,} bytes against {bytes_:,} for a plain "
+        f"filter (no model) certified the same way; {outcome} (gate.when_model_does_not_pay = "
+        f"\"{plain['when_model_does_not_pay']}\")"
+    )
+
+
 def summary_text(report: dict, folder: Path) -> str:
     size, base, held = report["size"], report["baseline"], report["heldout"]
     status = f"published version {report['version']}" if report["gate"]["passed"] else "REFUSED by the gate"
@@ -105,6 +124,8 @@ def summary_text(report: dict, folder: Path) -> str:
         f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
         f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
     ]
+    if "plain_filter" in report:
+        lines.append(plain_filter_text(report["plain_filter"]))
     if "drift" in report:
         lines.append(drift_text(report["drift"]))
     lines += [f"  refused: {reason}" for reason in report["gate"]["reasons"]]

@@ -103,6 +103,11 @@ class GateSettings:
     # service (0.2: at most 20% fewer). On by default: a filter's "no" is trusted, so a truncated
     # export would let every dropped member through unchecked; unbans shrink a list slowly.
     max_member_drop: float = field(default=0.2, metadata={"range": (0.0, 1.0)})
+    # rule model_pays: what a build does when its learned artifact is not smaller than the plain
+    # filter (no model, one region, the same aim) it would replace: "publish" the learned one and
+    # say so, "publish_plain" publish the plain filter instead, or "refuse" both. Either artifact
+    # opens with the same loader.
+    when_model_does_not_pay: str = field(default="publish", metadata={"choices": ("publish", "publish_plain", "refuse")})
 
 
 @dataclass(frozen=True)

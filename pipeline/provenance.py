@@ -40,9 +40,11 @@ def config_digest(config: BuildConfig) -> str:
     """xxh3-128 of the settings that shape the artifact. File paths and the column names they are
     read with are left out, so moving or renaming a corpus or a store does not change the
     artifact's bytes, and so is [compute]: the chunk size and the machines a build runs on never
-    change its result."""
+    change its result. So is gate.when_model_does_not_pay: it picks which of two artifacts ships
+    (the learned one or the plain filter), and the other settings fix the bytes of each."""
     settings = dataclasses.asdict(config)
     settings.pop("compute")
+    settings["gate"].pop("when_model_does_not_pay")
     reading = (("corpus", "members"), ("corpus", "non_members"), ("corpus", "key_column"), ("corpus", "count_column"))
     for section, key in (*reading, ("store", "path")):
         settings[section].pop(key)

@@ -4,13 +4,27 @@ names follow the contract in the design notes (§4); `gate.checks` lists every r
 
 from __future__ import annotations
 
+import dataclasses
 import math
+from pathlib import Path
 
 from tamis.bloom import bloom_bits, lower_bound_bits
 from tamis.config import BuildConfig
 from tamis.corpus import Corpus
 from tamis.drift import Drift
-from tamis.verify import GateCheck, Verification, refusal_reasons
+from tamis.verify import GateCheck, PlainComparison, Verification, refusal_reasons
+
+
+def settings_of(config: BuildConfig) -> dict:
+    """Every setting of the build as JSON values (paths as text, lists for tuples)."""
+    def plain(value):
+        if isinstance(value, dict):
+            return {key: plain(item) for key, item in value.items()}
+        if isinstance(value, (tuple, list)):
+            return [plain(item) for item in value]
+        return str(value) if isinstance(value, Path) else value
+
+    return plain(dataclasses.asdict(config))
 
 
 def _region_rows(plan, filters) -> list[dict]:
@@ -42,6 +56,8 @@ def build_report(
     total_bytes: int,
     checks: list[GateCheck],
     drift: Drift,
+    comparison: PlainComparison,
+    published_plain: bool,
     version: int | None,
     timings: dict,
 ) -> dict:
@@ -56,6 +72,13 @@ def build_report(
         "build_id": provenance["build_id"],
         "built_at": provenance["built_at"],
         "provenance": provenance,
+        "paths": {
+            "members": str(config.corpus.members),
+            "non_members": str(config.corpus.non_members),
+            "store": str(config.store.path),
+            "artifact": None,  # known once the build is published or refused
+        },
+        "config": settings_of(config),
         "target_fpr": target,
         "aim_fpr": aim_fpr,
         "corpus": {
@@ -85,6 +108,7 @@ def build_report(
         "regions": _region_rows(plan, filters),
         "expected_fpr": plan.expected_fpr,
         "drift": drift.as_report(),
+        "plain_filter": comparison.as_report(config.gate.when_model_does_not_pay, published_plain),
         "gate": {"passed": not reasons, "reasons": reasons, "checks": [check.as_report() for check in checks]},
         "timings": timings,
     }

@@ -15,6 +15,7 @@ from __future__ import annotations
 import base64
 import html
 import io
+import json
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -139,9 +140,14 @@ def size_figure(size: dict, baseline: dict) -> Figure:
 
 
 def drift_figure(drift: dict, heldout: dict, false_negatives: int, target: float) -> Figure:
-    """The version in service against this build: held-out false-positive rate (bar: measured,
-    mark: upper bound) beside the target, and today's members each one misses."""
-    figure, (fpr_ax, missed_ax) = _figure(columns=2)
+    """The version in service against this build: held-out false-positive rate in percent (bar:
+    measured, mark: upper bound) beside the target, and, when either misses any, today's members
+    each one misses."""
+    from matplotlib.ticker import PercentFormatter
+
+    missed = [drift["members_missed"], false_negatives]
+    figure, axes = _figure(columns=2 if any(missed) else 1)  # nothing missed: the page says "none" instead
+    fpr_ax = axes[0]
     names = [f"version {drift['current_version']}\nin service", "this build"]
     rates = [drift["heldout_fpr"], heldout["fpr"]]
     uppers = [drift["heldout_fpr_upper"], heldout["fpr_upper"]]
@@ -150,14 +156,17 @@ def drift_figure(drift: dict, heldout: dict, false_negatives: int, target: float
     fpr_ax.axhline(target, color=MEMBER_COLOUR, linestyle="--", label="target")
     fpr_ax.set_xticks([0, 1], names)
     fpr_ax.set_ylabel("held-out false-positive rate")
+    fpr_ax.yaxis.set_major_formatter(PercentFormatter(xmax=1.0))  # percent, as in the tables
     fpr_ax.set_ylim(0, max(target, *uppers) * 1.3)  # headroom for the legend above the bars
     fpr_ax.legend(loc="upper left", ncols=2, fontsize=8)
-    missed = [drift["members_missed"], false_negatives]
+    if not any(missed):
+        return figure
+    missed_ax = axes[1]
     missed_ax.bar([0, 1], missed, color=[BOUNDARY_COLOUR, NONMEMBER_COLOUR])
     for x, value in enumerate(missed):
         missed_ax.annotate(f"{value:,}", (x, value), ha="center", va="bottom", fontsize=8)
     missed_ax.set_xticks([0, 1], names)
-    missed_ax.set_ylim(0, max(1, *missed) * 1.2)  # counts start at 0, even when all are 0
+    missed_ax.set_ylim(0, max(missed) * 1.2)
     missed_ax.set_ylabel("today's members answered no")
     return figure
 
@@ -240,7 +249,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("model bytes / filter bytes", f"{size['model_bytes']:,} / {size['filter_bytes']:,}"),
         ("bits per member", f"{size['bits_per_member']:.2f}"),
         ("plain Bloom filter bytes (ratio)", f"{base['bloom_bytes']:,} ({base['ratio']:.3f})"),
-        ("lower bound bytes", f"{base['lower_bound_bytes']:,.0f}"),
+        ("lower bound bytes (any filter without a model)", f"{base['lower_bound_bytes']:,.0f}"),
         ("KL divergence / AUC", f"{report['separation']['kl_bits']:.3f} bits / {report['separation']['auc']:.4f}"),
         ("model", f"{report['model']['trees']} trees"),
     ]
@@ -273,7 +282,8 @@ def drift_rows(drift: dict, report: dict) -> list[tuple[str, object]]:
         ("version in service", drift["current_version"]),
         ("its bytes / this build's", f"{drift['artifact_bytes']:,} / {report['size']['total_bytes']:,}"),
         ("its members / today's", f"{drift['members_built']:,} / {report['corpus']['members']:,}"),
-        ("today's members it misses", f"{drift['members_missed']:,} ({drift['members_missed_share']:.2%})"),
+        ("today's members it misses",
+         "none" if not drift["members_missed"] else f"{drift['members_missed']:,} ({drift['members_missed_share']:.2%})"),
         ("its held-out false-positive rate", _percent(drift["heldout_fpr"])),
         ("its held-out upper bound", _percent(drift["heldout_fpr_upper"])),
     ]
@@ -295,10 +305,80 @@ def _image(uri: str, alt: str) -> str:
     return f'<img src="{uri}" width="{width}" height="{height}" alt="{html.escape(alt)}"/>'
 
 
-def render_report_page(report: dict, scores: ScoreSample) -> str:
-    """The whole page as text."""
+# What the page's less common words mean, said once below the key numbers.
+TERMS = (
+    ("aim", "the false-positive rate the regions were planned for, below the target: the held-out measurement "
+            "has sampling error, so a build planned right at the target would fail the gate's upper bound about "
+            "half the time; planning at the aim leaves room for that error (gate.aim_sigmas, gate.confidence)."),
+    ("effective sample", "how many independent draws the held-out keys are worth. Without lookup counts it is "
+                         "their number; with counts the rate is by lookups, and a few heavy keys weigh like few "
+                         "draws: Kish's (sum of counts)^2 / sum of squared counts. The upper bound is computed on it."),
+    ("lower bound", "n log2(1/F) bits for n members at rate F: the fewest bytes any filter without a model can "
+                    "take (a plain Bloom filter needs about 1.44 times that). A learned filter may go below it, "
+                    "because its model already tells most non-members from members; when the artifact is above "
+                    "it, the model did not earn that much."),
+)
+
+
+def provenance_rows(report: dict) -> list[tuple[str, object]]:
+    provenance, paths = report["provenance"], report.get("paths", {})
+    return [
+        ("tool version", f"tamis {provenance['tool_version']}"),
+        ("built at", report["built_at"]),
+        ("build", report["build_id"]),
+        ("members", paths.get("members", "n/a")),
+        ("non-members", paths.get("non_members", "n/a")),
+        ("corpus digest (xxh3-128 of every key and count)", provenance["corpus_digest"]),
+        ("config digest (xxh3-128 of the settings that shape the artifact)", provenance["config_digest"]),
+        ("store", paths.get("store", "n/a")),
+        ("artifact", paths.get("artifact") or "being published (this page is rewritten once it is)"),
+    ]
+
+
+def config_rows(config: dict) -> list[list[str]]:
+    """The build's settings, one row a key (section.key = value)."""
+    return [[f"{section}.{key}", json.dumps(value)] for section, table in config.items() for key, value in table.items()]
+
+
+def plain_filter_text(plain: dict) -> str:
+    """The learned artifact against the plain filter it would replace, in a sentence."""
+    learned, bytes_ = plain["learned_bytes"], plain["plain_bytes"]
+    if plain["model_pays"]:
+        return (f"The model pays: the learned artifact takes {learned:,} bytes, {1 - learned / bytes_:.1%} less than "
+                f"the {bytes_:,} of a plain filter (no model) certified the same way.")
+    if plain["published"] == "plain":
+        outcome = "the plain filter is published instead"
+    elif plain["when_model_does_not_pay"] == "refuse":
+        outcome = "the gate refuses the build"
+    else:
+        outcome = "the learned artifact is published anyway"
+    return (f"The model does not pay: the learned artifact takes {learned:,} bytes against {bytes_:,} for a plain "
+            f"filter (no model) certified the same way; {outcome} "
+            f"(gate.when_model_does_not_pay = \"{plain['when_model_does_not_pay']}\").")
+
+
+def draw_figures(report: dict, scores: ScoreSample) -> dict[str, str]:
+    """The page's figures as PNG data URIs, by name (the slow part of the page: about a second)."""
+    figures = {
+        "score distributions": score_figure(scores, boundaries_of(report["regions"])),
+        "region budgets and filter sizes": regions_figure(report["regions"]),
+        "size against a plain Bloom filter and the lower bound": size_figure(report["size"], report["baseline"]),
+    }
+    drift = report["drift"]
+    if drift["status"] == "evaluated":
+        figures["drift of the version in service"] = drift_figure(drift, report["heldout"], report["false_negatives"],
+                                                                   report["target_fpr"])
+    return {name: png_data_uri(figure) for name, figure in figures.items()}
+
+
+def _figure_html(figures: dict[str, str], name: str) -> list[str]:
+    return [_image(figures[name], name)] if name in figures else []
+
+
+def page_html(report: dict, figures: dict[str, str]) -> str:
+    """The whole page as text, with figures drawn by `draw_figures` (any missing one is left out)."""
     passed = report["gate"]["passed"]
-    title = f"tamis build {report['build_id']}: {decision_text(report)}"
+    title = f"tamis build {report['build_id']}"  # the verdict is said once, just below
     drift = report["drift"]
     parts = [
         "<!DOCTYPE html>",
@@ -308,35 +388,47 @@ def render_report_page(report: dict, scores: ScoreSample) -> str:
         f'<p class="{"passed" if passed else "refused"}"><strong>{html.escape(decision_text(report))}</strong></p>',
     ]
     parts += [f"<p class=\"refused\">{html.escape(reason)}</p>" for reason in report["gate"]["reasons"]]
+    if "plain_filter" in report:
+        plain = report["plain_filter"]
+        parts.append(f'<p class="{"passed" if plain["model_pays"] else "refused"}">{html.escape(plain_filter_text(plain))}</p>')
     parts += [
         "<h2>Gate</h2>",
         _table(["rule", "result", "value", "limit", "detail"], gate_rows(report)),
         "<h2>Key numbers</h2>",
         _pairs(key_numbers(report)),
+        "<dl>" + "".join(f"<dt>{html.escape(term)}</dt><dd>{html.escape(text)}</dd>" for term, text in TERMS) + "</dl>",
         "<h2>Score distributions</h2>",
-        _image(png_data_uri(score_figure(scores, boundaries_of(report["regions"]))), "score distributions"),
+        *_figure_html(figures, "score distributions"),
         "<h2>Regions</h2>",
-        _image(png_data_uri(regions_figure(report["regions"])), "region budgets and filter sizes"),
+        *_figure_html(figures, "region budgets and filter sizes"),
         _table(["region", "scores from", "to", "members", "non-member share", "budget", "mode", "filter bytes"],
                region_rows(report["regions"])),
         "<h2>Size</h2>",
-        _image(png_data_uri(size_figure(report["size"], report["baseline"])), "size against a plain Bloom filter"),
+        *_figure_html(figures, "size against a plain Bloom filter and the lower bound"),
+        "<p>The lower bound is the fewest bytes any filter without a model can take for these members at the "
+        "target, n log2(1/F) bits; a plain Bloom filter needs about 1.44 times that. The learned artifact beats "
+        "it only as far as its model tells non-members from members.</p>",
         "<h2>Drift of the version in service</h2>",
         _pairs(drift_rows(drift, report)),
-    ]
-    if drift["status"] == "evaluated":
-        figure = drift_figure(drift, report["heldout"], report["false_negatives"], report["target_fpr"])
-        parts.append(_image(png_data_uri(figure), "drift of the version in service"))
-    parts += [
+        *_figure_html(figures, "drift of the version in service"),
         "<h2>Timings</h2>",
         _table(["stage", "seconds"], [[stage, f"{seconds:.1f}"] for stage, seconds in report["timings"].items()]),
+        "<h2>Provenance</h2>",
+        _pairs(provenance_rows(report)),
+        "<h3>Configuration</h3>",
+        _table(["setting", "value"], config_rows(report.get("config", {}))),
         "</body></html>",
     ]
     return "\n".join(parts) + "\n"
 
 
-def write_report_page(folder: Path, report: dict, scores: ScoreSample) -> Path:
-    """Write `report.html` into `folder` (atomically) and return its path."""
+def render_report_page(report: dict, scores: ScoreSample) -> str:
+    """The whole page as text, its figures drawn from `scores`."""
+    return page_html(report, draw_figures(report, scores))
+
+
+def write_report_page(folder: Path, report: dict, figures: dict[str, str]) -> Path:
+    """Write `report.html` into `folder` (atomically) with figures already drawn; return its path."""
     path = folder / REPORT_PAGE_NAME
-    write_atomically(path, [render_report_page(report, scores).encode("utf-8")])
+    write_atomically(path, [page_html(report, figures).encode("utf-8")])
     return path

@@ -13,6 +13,8 @@ Gate rules (each refusal starts with the rule's name; the thresholds are `config
     max_artifact_bytes   the artifact file is at most this large
     max_size_growth      at most this share more bytes than the version in service
     max_member_drop      at most this share fewer members than the version in service
+    model_pays           the learned artifact is smaller than the plain filter it would replace; when
+                         it is not, gate.when_model_does_not_pay says what happens (see `PlainComparison`)
 """
 
 from __future__ import annotations
@@ -332,6 +334,55 @@ def _check_member_drop(members: int, limit: float, baseline: Baseline | None) ->
     return GateCheck("max_member_drop", True, drop, limit, f"{words}, allowed drop {limit:.0%}")
 
 
+@dataclass(frozen=True)
+class PlainComparison:
+    """The learned artifact against the plain filter it would replace: no model, one region holding
+    every member, planned at the same aim so that the same held-out check would certify it. Both
+    sizes are of the artifact files as written before verification (the measured figures then add
+    the same few dozen header bytes to either)."""
+
+    learned_bytes: int
+    plain_bytes: int
+
+    @property
+    def model_pays(self) -> bool:
+        """The model earns its bytes: the learned artifact is smaller than the plain one."""
+        return self.learned_bytes < self.plain_bytes
+
+    def as_report(self, policy: str, published_plain: bool) -> dict:
+        return {
+            "learned_bytes": self.learned_bytes,
+            "plain_bytes": self.plain_bytes,
+            "model_pays": self.model_pays,
+            "when_model_does_not_pay": policy,
+            "published": "plain" if published_plain else "learned",
+        }
+
+
+def publishes_plain(comparison: PlainComparison, policy: str) -> bool:
+    """True when the plain filter ships instead of the learned artifact (gate.when_model_does_not_pay)."""
+    return policy == "publish_plain" and not comparison.model_pays
+
+
+def _check_model_pays(comparison: PlainComparison, policy: str) -> GateCheck:
+    learned, plain = comparison.learned_bytes, comparison.plain_bytes
+    ratio = learned / plain
+    words = (
+        f"the learned artifact takes {learned:,} bytes, {ratio - 1:+.1%} against {plain:,} for a plain filter "
+        f"(no model) certified the same way"
+    )
+    if comparison.model_pays:
+        return GateCheck("model_pays", True, ratio, 1.0, words)
+    setting = f'gate.when_model_does_not_pay = "{policy}"'
+    if policy == "refuse":
+        return GateCheck("model_pays", False, ratio, 1.0,
+                         f'{words}: the model does not pay; refused ({setting}; "publish_plain" publishes the plain filter)')
+    if policy == "publish_plain":
+        return GateCheck("model_pays", True, ratio, 1.0, f"{words}: the model does not pay; the plain filter is published ({setting})")
+    return GateCheck("model_pays", True, ratio, 1.0,
+                     f'{words}: the model does not pay; published anyway ({setting}; "publish_plain" publishes the plain filter)')
+
+
 def gate_checks(
     verification: Verification,
     *,
@@ -340,9 +391,11 @@ def gate_checks(
     members: int,
     settings: GateSettings,
     baseline: Baseline | None,
+    comparison: PlainComparison | None = None,
 ) -> list[GateCheck]:
-    """Every gate rule checked after the artifact is written, in a fixed order."""
-    return [
+    """Every gate rule checked after the artifact is written, in a fixed order (model_pays only
+    when the plain filter was built to compare with)."""
+    checks = [
         _check_false_negatives(verification),
         _check_answer_paths(verification.paths),
         _check_fpr_upper(verification, target, settings.fpr_slack),
@@ -350,6 +403,9 @@ def gate_checks(
         _check_size_growth(total_bytes, settings.max_size_growth, baseline),
         _check_member_drop(members, settings.max_member_drop, baseline),
     ]
+    if comparison is not None:
+        checks.append(_check_model_pays(comparison, settings.when_model_does_not_pay))
+    return checks
 
 
 def refusal_reasons(checks: list[GateCheck]) -> list[str]:

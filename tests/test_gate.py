@@ -13,10 +13,12 @@ from tamis.verify import (
     Baseline,
     Measurement,
     PathAgreement,
+    PlainComparison,
     Verification,
     clopper_pearson_upper,
     gate_checks,
     needed_heldout,
+    publishes_plain,
     refusal_reasons,
     require_heldout,
 )
@@ -156,3 +158,30 @@ def test_min_heldout_raises_the_floor_above_the_statistical_need():
 def test_the_need_is_the_published_closed_form(target):
     # n = ceil(ln(1 - c) / ln(1 - F)), the zero-failure sample size (common practice in acceptance sampling)
     assert needed_heldout(target, 0.95) == math.ceil(math.log(0.05) / math.log(1 - target))
+
+
+# --- model_pays: the learned artifact against the plain filter it would replace -------------------
+
+
+@pytest.mark.parametrize(
+    "learned, policy, passed, plain_published, says",
+    [
+        (9_000, "publish", True, False, "the learned artifact takes 9,000 bytes, -10.0% against 10,000"),
+        (11_000, "publish", True, False, "the model does not pay; published anyway"),
+        (11_000, "publish_plain", True, True, "the model does not pay; the plain filter is published"),
+        (11_000, "refuse", False, False, "the model does not pay; refused"),
+        (10_000, "publish_plain", True, True, "+0.0% against 10,000"),  # no saving: the plain one is simpler
+        (9_000, "refuse", True, False, "-10.0%"),
+    ],
+)
+def test_model_pays_compares_with_the_plain_filter(learned, policy, passed, plain_published, says):
+    comparison = PlainComparison(learned_bytes=learned, plain_bytes=10_000)
+    found = gate_checks(verification(), target=TARGET, total_bytes=learned, members=10_000,
+                        settings=GateSettings(when_model_does_not_pay=policy), baseline=None, comparison=comparison)
+    rule = found[-1]
+    assert [c.rule for c in found] == RULES + ["model_pays"]
+    assert rule.passed is passed and says in rule.detail
+    assert rule.value == learned / 10_000 and rule.limit == 1.0
+    assert publishes_plain(comparison, policy) is plain_published
+    if not passed:
+        assert refusal_reasons(found) == [f"model_pays: {rule.detail}"]

@@ -4,6 +4,7 @@ size asked for, and the build's key numbers in its text."""
 import base64
 import copy
 import io
+import json
 import shutil
 import struct
 import xml.etree.ElementTree as ET
@@ -13,7 +14,7 @@ import pytest
 from PIL import Image
 
 from tamis import cli
-from tamis.report_page import FIGURE_DPI, FIGURE_INCHES, REPORT_PAGE_NAME, ScoreSample, render_report_page
+from tamis.report_page import FIGURE_DPI, FIGURE_INCHES, REPORT_PAGE_NAME, ScoreSample, drift_figure, render_report_page
 from small_build import small_config, write_corpus
 from tamis_testing import plain_build_flow
 
@@ -151,3 +152,49 @@ def test_one_region_and_tied_scores_still_draw(builds):
     scores = ScoreSample(np.zeros(10, dtype=np.int64), np.zeros(4, dtype=np.int64), np.array([1, 1, 2, 5]))
     images = png_images(parse(render_report_page(report, scores)))
     assert len(images) == 3 and all(ihdr_size(png) == PIXELS for png in images)
+
+
+def test_the_page_names_its_provenance_and_explains_its_terms(builds):
+    _, second = builds
+    report = second.report
+    root = parse(second.page.read_text(encoding="utf-8"))
+    text = text_of(root)
+    # the title names the build; the verdict is said once, below it
+    title = root.find("head/title").text
+    assert title == f"tamis build {report['build_id']}" and "published" not in title
+    artifact = second.folder / "artifact.tamis"
+    for shown in (report["paths"]["members"], report["paths"]["non_members"], str(artifact),
+                  report["provenance"]["corpus_digest"], report["provenance"]["config_digest"],
+                  f"tamis {report['provenance']['tool_version']}", "target.fpr", "gate.when_model_does_not_pay"):
+        assert shown in text, shown
+    # the files on disk hold the artifact's final path (written again once it was published)
+    assert json.loads((second.folder / "report.json").read_text())["paths"]["artifact"] == str(artifact)
+    assert "lower bound bytes (any filter without a model)" in text
+    assert "the fewest bytes any filter without a model can take" in text
+    for term in ("aim", "effective sample"):
+        assert root.find(f".//dl/dt[.='{term}']") is not None, term
+    assert "The model pays: the learned artifact takes" in text
+
+
+def test_the_timings_include_report_publish_and_total(builds):
+    _, second = builds
+    timings = json.loads((second.folder / "report.json").read_text())["timings"]
+    assert {"report", "publish", "total"} <= set(timings)
+    assert timings["total"] >= sum(seconds for stage, seconds in timings.items() if stage != "total")
+    rows = {row.findtext("td[1]") for row in parse(second.page.read_text(encoding="utf-8")).iter("tr")}
+    assert {"report", "publish", "total"} <= rows
+
+
+def test_the_drift_chart_reads_in_percent_and_draws_no_empty_members_chart(builds):
+    from matplotlib.ticker import PercentFormatter
+
+    _, second = builds
+    report = second.report
+    assert report["drift"]["members_missed"] == 0 and report["false_negatives"] == 0
+    figure = drift_figure(report["drift"], report["heldout"], report["false_negatives"], report["target_fpr"])
+    assert len(figure.axes) == 1  # nothing missed on either side: no chart of two zero bars
+    assert isinstance(figure.axes[0].yaxis.get_major_formatter(), PercentFormatter)
+    rows = {row.findtext("th"): row.findtext("td") for row in parse(second.page.read_text(encoding="utf-8")).iter("tr")}
+    assert rows["today's members it misses"] == "none"
+    missed = {**report["drift"], "members_missed": 3, "members_missed_share": 0.001}
+    assert len(drift_figure(missed, report["heldout"], 0, report["target_fpr"]).axes) == 2
