@@ -6,6 +6,11 @@ result. A stage that raises ends the build: BadInput passes through unchanged (t
 anything else becomes BuildFailed naming the stage. Either way nothing is published and the
 build's staging folder is removed.
 
+Beside the learned artifact the build makes the plain filter it would replace (stage "plain": no
+model, one region holding every member, planned at the same aim) and writes both; the gate's rule
+model_pays compares their sizes, and gate.when_model_does_not_pay may ship the plain one instead.
+Only the artifact that ships is verified.
+
 The stages that touch every key (features, scoring, filter insertion, verification) cut their keys
 into chunks of `compute.chunk_keys` and run one task a chunk on the flow's task runner: threads on
 this machine, or the workers of a Dask cluster when `compute.cluster` names one (`flow_for`). Chunks
@@ -45,7 +50,7 @@ from tamis.regions import RegionPlan, plan_regions, region_of
 from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
 from tamis.trees import Forest, score_batch
 
-STAGES = ("corpus", "features", "model", "regions", "filters", "package", "verify", "drift", "report", "publish")
+STAGES = ("corpus", "features", "model", "regions", "filters", "plain", "package", "verify", "drift", "report", "publish")
 
 # Reading the corpus is the stage that touches files other systems write, often on a network
 # filesystem whose hiccups clear within seconds: three more tries over about 40 s, then give up.
@@ -402,8 +407,9 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
         plan, scores = choose_regions(stages.chunks("regions"), corpus, X, choice.forest, aim, config)
     with stages.stage("filters"):
         filters = fill_filters(stages.chunks("filters"), corpus, scores.member_scores, plan, config)
-        learned = Candidate(choice, plan, filters, scores)
-        plain = plain_candidate(stages.chunks("filters"), corpus, learned, aim, config)
+    learned = Candidate(choice, plan, filters, scores)
+    with stages.stage("plain"):
+        plain = plain_candidate(stages.chunks("plain"), corpus, learned, aim, config)
 
     staging = publish.new_staging(store, provenance["build_id"])
     try:

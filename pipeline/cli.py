@@ -16,7 +16,8 @@ import traceback
 from importlib import resources
 from pathlib import Path
 
-from tamis import publish, tool_version
+from tamis import publish
+from tamis.version import tool_version
 from tamis.errors import BadInput
 
 EXIT_PUBLISHED, EXIT_REFUSED, EXIT_BAD_INPUT, EXIT_FAILED = 0, 1, 2, 3

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import xxhash
 
-from tamis import tool_version
+from tamis.version import tool_version
 from tamis.config import BuildConfig
 from tamis.corpus import Corpus
 

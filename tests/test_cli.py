@@ -7,7 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from tamis import cli, publish, tool_version
+from tamis import cli, publish
+from tamis.version import tool_version
 
 
 def run(capsys, *argv: str) -> tuple[int, str, str]:
