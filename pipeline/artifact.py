@@ -54,6 +54,13 @@ PREAMBLE = struct.Struct("<8sHHIQ8x")
 ALIGNMENT = 64
 # The header is metadata only; anything larger belongs in a section. Checked before reading it.
 MAX_HEADER_BYTES = 1 << 20
+# The deepest nesting of maps and lists a header may have. Ours nest 4 deep (meta, regions, a
+# region, its fields); the bound keeps every walk over a hostile header short and far from
+# Python's recursion limit (a header of 546 bytes can nest lists 494 deep). The header's bytes
+# bound the number of values, so with this every check of the header is bounded in work too.
+MAX_HEADER_DEPTH = 32
+# The most sections a table may list: ours hold the forest's 6 and one a backup filter.
+MAX_SECTIONS = 4096
 ALLOWED_DTYPES = frozenset({"|u1", "|i1", "<u2", "<i2", "<u4", "<i4", "<u8", "<i8", "<f4", "<f8"})
 
 
@@ -70,30 +77,39 @@ def _align(offset: int) -> int:
 # ---------------------------------------------------------------------------------------------------
 
 
-def canonical_header(value: Any, where: str = "header") -> Any:
+def canonical_header(value: Any, where: tuple = ()) -> Any:
     """`value` as plain msgpack types with every map's keys sorted; numpy scalars become Python ones.
 
-    Raises ValueError naming the offending field for anything else (arrays belong in sections).
+    Raises ValueError naming the offending field for anything else (arrays belong in sections), and
+    for maps and lists nested deeper than MAX_HEADER_DEPTH. `where` is the path of keys and indices
+    down to `value`; it is spelled out only for the error, so every value costs the same small work.
     """
+    if isinstance(value, (Mapping, list, tuple)) and len(where) >= MAX_HEADER_DEPTH:
+        raise ValueError(f"{_spelled(where)} nests maps and lists more than {MAX_HEADER_DEPTH} deep")
     if isinstance(value, Mapping):
         bad = [k for k in value if not isinstance(k, str)]
         if bad:
-            raise ValueError(f"{where} has a non-string key {bad[0]!r}; header maps need string keys")
-        return {k: canonical_header(value[k], f"{where}.{k}") for k in sorted(value)}
+            raise ValueError(f"{_spelled(where)} has a non-string key {bad[0]!r:.80}; header maps need string keys")
+        return {k: canonical_header(value[k], (*where, k)) for k in sorted(value)}
     if isinstance(value, (list, tuple)):
-        return [canonical_header(v, f"{where}[{i}]") for i, v in enumerate(value)]
+        return [canonical_header(v, (*where, i)) for i, v in enumerate(value)]
     if isinstance(value, np.generic) and value.dtype.kind in "biufSU":
         value = value.item()
     if value is None or isinstance(value, (bool, str, bytes, float)):
         return value
     if isinstance(value, int):
         if not -(2**63) <= value < 2**64:
-            raise ValueError(f"{where} = {value} does not fit in 64 bits")
+            raise ValueError(f"{_spelled(where)} = {value} does not fit in 64 bits")
         return value
     raise ValueError(
-        f"{where} has type {type(value).__name__}; a header holds only None, bool, int, float, str, "
+        f"{_spelled(where)} has type {type(value).__name__}; a header holds only None, bool, int, float, str, "
         "bytes, lists and string-keyed maps (put arrays in sections)"
     )
+
+
+def _spelled(where: tuple) -> str:
+    """A path of keys and indices as `header.regions[2].mode` (long keys cut short)."""
+    return "header" + "".join(f"[{step}]" if isinstance(step, int) else f".{step:.40}" for step in where)
 
 
 def _storable(name: str, array: np.ndarray) -> np.ndarray:
@@ -189,6 +205,8 @@ def write_artifact(path: str | os.PathLike, header: Mapping[str, Any], sections:
     """Write header (plain msgpack-able data) and named numeric sections to path, atomically
     (`write_atomically`). Sections are written in name order."""
     meta = canonical_header(header)
+    if len(sections) > MAX_SECTIONS:
+        raise ValueError(f"{len(sections)} sections, more than the {MAX_SECTIONS} a file may hold")
     arrays = {name: _storable(name, sections[name]) for name in sorted(sections)}
     packed, table = _layout(meta, arrays)
     if len(packed) > MAX_HEADER_BYTES:
@@ -336,6 +354,8 @@ def load_artifact(path: str | os.PathLike) -> Artifact:
     data = _read_file(path)
     version, header_length, header_sum = _read_preamble(path, data)
     decoded = _decode_header(path, data[PREAMBLE.size : PREAMBLE.size + header_length], header_sum)
+    if len(decoded["sections"]) > MAX_SECTIONS:
+        raise ArtifactError(f"{path}: the section table lists {len(decoded['sections'])} sections; at most {MAX_SECTIONS} are allowed")
     table = [_check_entry(path, entry, i) for i, entry in enumerate(decoded["sections"])]
     _check_bounds(path, table, PREAMBLE.size + header_length, len(data))
     sections = {}

@@ -404,11 +404,18 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict) -
 
 
 def _open_checked(path: Path) -> MembershipFilter:
+    """Every failure to open is a FilterLoadError: the container's own errors, the header's, and
+    anything else a hostile file might still provoke, named with its type (the checks above are
+    meant to leave nothing for this last line to catch)."""
     try:
         loaded = load_artifact(path)
+        return _parse(path, loaded.version, loaded.header, loaded.sections)
+    except FilterLoadError:
+        raise
     except ArtifactError as error:
         raise FilterLoadError(str(error)) from error
-    return _parse(path, loaded.version, loaded.header, loaded.sections)
+    except Exception as error:
+        raise FilterLoadError(f"{path}: cannot be used ({type(error).__name__}: {error})") from error
 
 
 def open_filter(path: str | os.PathLike, on_error: OnError = "raise") -> MembershipFilter | DegradedFilter:

@@ -29,6 +29,7 @@ from tamis.trees import (
     CHILD_DTYPES,
     INT32_LIMIT,
     MAX_TREE_LEAVES,
+    MAX_TREES,
     TREE_SPLITS_DTYPES,
     VALUE_DTYPES,
     Forest,
@@ -78,7 +79,7 @@ class ModelSettings:
     # This grid chose 63 leaves at 0.6: 7 trees, 85.9k bytes against 240.2k for a plain Bloom filter.
     leaves: tuple[int, ...] = (31, 63)
     learning_rates: tuple[float, ...] = (0.3, 0.6)
-    max_trees: int = field(default=200, metadata={"range": (1, 100_000)})
+    max_trees: int = field(default=200, metadata={"range": (1, MAX_TREES)})
     # Query-cost budget: the most node tests per key. The batch evaluator tests every internal node
     # of every tree (trees x (leaves - 1)); 480 allows e.g. 32 trees of 16 leaves.
     max_nodes_per_key: int = field(default=480, metadata={"range": (1, 10**7)})

@@ -61,6 +61,9 @@ INT32_LIMIT = 2**31 - 1
 # The most leaves a tree may have: the compiled model never grows more (tamis.model), and the
 # bound keeps a hostile file's tree walks short (depth < 64).
 MAX_TREE_LEAVES = 64
+# The most trees a forest may have: the model stage grows at most this many (its max_trees), and
+# with MAX_TREE_LEAVES it bounds a query's node tests (at most 6.3 million) whatever a file says.
+MAX_TREES = 100_000
 
 # Rows walked per numpy pass in the batch evaluators: the walk's arrays (trees x rows node indices)
 # and the chunk's feature columns then stay in the CPU's second-level cache. Measured on one core
@@ -193,6 +196,8 @@ def _check_forest(forest: Forest) -> None:
     _check_dtype("right", forest.right, (forest.left.dtype,))
     _check_dtype("value", forest.value, VALUE_DTYPES)
 
+    if forest.trees > MAX_TREES:
+        raise ValueError(f"the forest has {forest.trees} trees; at most {MAX_TREES} are supported")
     splits = forest.tree_splits.astype(np.int64)
     if forest.trees and int(splits.max()) >= MAX_TREE_LEAVES:
         tree = int(np.argmax(splits >= MAX_TREE_LEAVES))

@@ -1,4 +1,5 @@
-"""Hostile files: mutated, truncated, extended and re-checksummed artifacts (hypothesis).
+"""Hostile files: mutated, truncated, extended and re-checksummed artifacts (hypothesis), headers
+nested deep or declaring huge counts, and files rewritten in place under an opened filter.
 
 For every file the loader either raises FilterLoadError or opens it and answers; no other
 exception, no hang (each open and query runs under a wall-clock alarm), and no allocation beyond a
@@ -23,8 +24,9 @@ from hypothesis import strategies as st
 
 from golden_build import build_golden
 from tamis import artifact
-from tamis.artifact import read_artifact, write_artifact
-from tamis.loader import FilterLoadError, open_filter
+from tamis.artifact import MAGIC, MAX_HEADER_DEPTH, MAX_SECTIONS, PREAMBLE, read_artifact, write_artifact
+from tamis.loader import DegradedFilter, FilterLoadError, open_filter
+from tamis.trees import MAX_TREES
 from test_golden import BUILD_EPOCH
 
 # Derandomized so that CI runs the same examples every time: 2,400 examples in all, the cheap raw
@@ -188,3 +190,110 @@ def test_section_table_entries_changed_with_the_header_rechecksummed(seed_file, 
     packed = msgpack.packb(outer, use_bin_type=True)
     preamble = raw[:12] + struct.pack("<IQ", len(packed), xxhash.xxh3_64_intdigest(packed)) + raw[24:32]
     check_hostile(seed_file["target"], preamble + packed + raw[32 + length :])
+
+
+# --- bounded parsing: deep nesting, huge counts ------------------------------------------------------
+
+
+def _container(meta: bytes) -> bytes:
+    """A file of format 1.0 whose header is `{"meta": <meta, already packed>, "sections": []}`, checksummed."""
+    packed = b"\x82" + msgpack.packb("meta") + meta + msgpack.packb("sections") + b"\x90"
+    return PREAMBLE.pack(MAGIC, 1, 0, len(packed), xxhash.xxh3_64_intdigest(packed)) + packed
+
+
+def _nested(depth: int) -> bytes:
+    """`depth` lists, each the only element of the one outside it, packed (msgpack's own packer
+    stops short of 100,000)."""
+    return b"\x91" * (depth - 1) + b"\x90"
+
+
+def _refused_cleanly(seed_file, raw: bytes, match: str) -> None:
+    check_hostile(seed_file["target"], raw)
+    with pytest.raises(FilterLoadError, match=match):
+        open_filter(seed_file["target"])
+    with pytest.warns(RuntimeWarning):
+        assert isinstance(open_filter(seed_file["target"], on_error="maybe"), DegradedFilter)
+
+
+@pytest.mark.parametrize("depth", [MAX_HEADER_DEPTH + 1, 494, 1_000, 100_000])
+def test_a_header_nested_deeper_than_the_limit_is_refused(seed_file, depth):
+    # 494 lists deep fit in 546 bytes and once made the header check recurse past Python's limit;
+    # 100,000 is past msgpack's own stack
+    header, _ = seed_file["parts"]
+    placeholder = msgpack.packb("placeholder for the nested lists")
+    inside_real_meta = msgpack.packb({**header, "note": "placeholder for the nested lists"}).replace(placeholder, _nested(depth))
+    for raw in (_container(inside_real_meta), _container(_nested(depth))):
+        _refused_cleanly(seed_file, raw, "nest|not valid msgpack|must be a map")
+
+
+def test_a_header_at_the_depth_limit_opens(seed_file):
+    header, sections = seed_file["parts"]
+    target = seed_file["target"]
+    note = msgpack.unpackb(_nested(MAX_HEADER_DEPTH - 2))  # with the outer map and "meta": the limit
+    write_artifact(target, {**header, "note": note}, {k: np.array(v) for k, v in sections.items()})
+    assert open_filter(target).contains_many(QUERIES).dtype == bool
+
+
+@pytest.mark.parametrize(
+    "declared",
+    [b"\xdd\xff\xff\xff\xff", b"\xdf\xff\xff\xff\xff", b"\xdb\xff\xff\xff\xff", b"\xc6\xff\xff\xff\xff"],
+    ids=["array32", "map32", "str32", "bin32"],
+)
+def test_msgpack_lengths_declared_beyond_the_header_are_refused(seed_file, declared):
+    # a header of a few bytes that declares 4 billion elements or bytes: refused without allocating them
+    packed = b"\x82\xa4meta" + declared + b"\xa8sections\x90"
+    raw = PREAMBLE.pack(MAGIC, 1, 0, len(packed), xxhash.xxh3_64_intdigest(packed)) + packed
+    _refused_cleanly(seed_file, raw, "not valid msgpack")
+
+
+def _lone_leaf_forest(seed_file, trees: int) -> bytes:
+    """The seed file with its forest replaced by `trees` trees of one leaf each (no split)."""
+    header, sections = seed_file["parts"]
+    arrays = {k: np.array(v) for k, v in sections.items()}
+    arrays["forest.tree_splits"] = np.zeros(trees, dtype="<u1")
+    for name, dtype in (("feature", "<u1"), ("threshold", "<f4"), ("left", "<i1"), ("right", "<i1")):
+        arrays[f"forest.{name}"] = np.zeros(0, dtype=dtype)
+    arrays["forest.value"] = np.zeros(trees, dtype="<i2")
+    target = seed_file["target"]
+    write_artifact(target, {**header, "forest": {**header["forest"], "trees": trees}}, arrays)
+    return target.read_bytes()
+
+
+def test_more_trees_than_the_limit_are_refused(seed_file):
+    # every tree costs each query a step, even a lone leaf: 100,001 of them fit in 300 kB
+    _lone_leaf_forest(seed_file, 3)
+    assert open_filter(seed_file["target"]).forest.trees == 3
+    raw = _lone_leaf_forest(seed_file, MAX_TREES + 1)
+    _refused_cleanly(seed_file, raw, f"{MAX_TREES + 1} trees.*at most {MAX_TREES}")
+
+
+def test_more_sections_than_the_limit_are_refused(seed_file):
+    header, sections = seed_file["parts"]
+    arrays = {**{k: np.array(v) for k, v in sections.items()}, **{f"pad.{i}": np.zeros(0, dtype="<u1") for i in range(MAX_SECTIONS)}}
+    target = seed_file["target"]
+    with pytest.raises(ValueError, match=f"more than the {MAX_SECTIONS}"):
+        write_artifact(target, header, arrays)
+    with pytest.MonkeyPatch.context() as patch:  # a writer without the limit
+        patch.setattr(artifact, "MAX_SECTIONS", 2 * MAX_SECTIONS)
+        write_artifact(target, header, arrays)
+    _refused_cleanly(seed_file, target.read_bytes(), f"at most {MAX_SECTIONS}")
+
+
+# --- the file changes under an opened filter -----------------------------------------------------------
+
+
+@FEWER
+@given(data=st.data())
+def test_a_file_rewritten_or_truncated_in_place_changes_no_answer(seed_file, data):
+    target = seed_file["target"]
+    target.write_bytes(seed_file["raw"])
+    loaded = open_filter(target)
+    before = loaded.contains_many(QUERIES).tolist()
+    raw = bytearray(seed_file["raw"])
+    for _ in range(data.draw(st.integers(0, 8))):
+        raw[data.draw(st.integers(0, len(raw) - 1))] = data.draw(st.integers(0, 255))
+    with open(target, "r+b") as handle:  # the same file, changed where it lies
+        handle.write(bytes(raw))
+        handle.truncate(data.draw(st.integers(0, len(raw))))
+    assert loaded.contains_many(QUERIES).tolist() == before
+    assert [loaded.contains(k) for k in QUERIES] == before
