@@ -27,7 +27,8 @@ from distributed import Client, LocalCluster  # noqa: E402
 
 from tamis.demo import generate_demo_corpus  # noqa: E402
 from tamis.features import default_feature_spec, featurize  # noqa: E402
-from tamis.model import ModelSettings, fit_model, fit_model_on_cluster  # noqa: E402
+from tamis.config import ModelSettings  # noqa: E402
+from tamis.model import fit_model, fit_model_on_cluster  # noqa: E402
 from tamis.regions import RegionSettings, plan_regions  # noqa: E402
 
 TARGET_FPR = 0.01

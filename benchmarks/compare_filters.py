@@ -88,7 +88,8 @@ from tamis.corpus import Corpus, KeySet, sample_keys
 from tamis.demo import write_demo_corpus
 from tamis.errors import BadInput
 from tamis.features import default_feature_spec, featurize
-from tamis.regions import kl_divergence_bits, region_of, segment_edges, segment_shares
+from tamis.query import region_of
+from tamis.regions import kl_divergence_bits, segment_edges, segment_shares
 from tamis.trees import score_batch
 
 import word_corpus  # benchmarks/word_corpus.py: this script's folder is on sys.path when it runs

@@ -10,14 +10,15 @@ the one to measure. Then, in one run, it prints:
 1. batch `contains_many` of --keys keys (held-out non-members and members, shuffled, as str) in keys/s;
 2. single-key `contains`, p50 and p99 latency;
 3. the same keys through a plain Bloom filter (`tamis.bloom`) holding the same members at the
-   same target false-positive rate: the baseline every figure is divided by;
+   same target false-positive rate, and through a loop of one xxh3_64 call per key: the baselines
+   the figures are divided by (batch keys/s as a share of the xxh3 loop's; a single `contains` as
+   so many xxh3 calls' worth of time);
 4. the batch profile: packing, features, trees, hashing and probes, each on its own;
 5. the curve of artifact bytes against batch lookup speed over the budgets;
 6. the cost of opening the artifact in a fresh process, with numba's cache cold and warm.
 
-Figures 1, 2, 4 and 5 are given for the plain numpy path and, when numba is installed, for the
-compiled path (`tamis.compiled`), side by side in the same run; both give the same answers,
-which the run checks.
+Figures 1, 2, 4 and 5 are given for the numpy path and, when numba is installed, for the compiled
+path (`tamis.query`), side by side in the same run; both give the same answers, which the run checks.
 
 Every time is given as CPU seconds of this process (time.process_time) and as wall seconds: on a
 shared machine the CPU figure is the steadier one. Each batch figure is the best of --repeat runs.
@@ -26,7 +27,6 @@ shared machine the CPU figure is the steadier one. Each batch figure is the best
 from __future__ import annotations
 
 import argparse
-import contextlib
 import dataclasses
 import os
 import subprocess
@@ -37,18 +37,20 @@ from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
+import xxhash
 
 from tamis import compiled
-from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_slices
+from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes
 from tamis.config import load_config
 from tamis.corpus import load_corpus
 from tamis.demo import write_demo_corpus
 from tamis.features import default_feature_spec, featurize, featurize_columns
 from tamis.filters import build_filters
-from tamis.loader import MembershipFilter, PackedKeys, open_filter, pack_batch
+from tamis.loader import MembershipFilter, open_filter
 from tamis.model import fit_model
 from tamis.package import package_artifact
-from tamis.regions import plan_regions, region_of
+from tamis.query import available_paths, hashes_where, pack_batch, region_of
+from tamis.regions import plan_regions
 from tamis.trees import score_batch, score_columns
 
 DEMO_CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.toml"
@@ -119,6 +121,19 @@ def single_key_latency(loaded, keys: list[bytes]) -> tuple[float, float]:
     return float(p50), float(p99)
 
 
+def xxh3_loop(keys: list[bytes]) -> list[int]:
+    """The baseline: one xxh3_64 call per key, in a comprehension."""
+    digest = xxhash.xxh3_64_intdigest
+    return [digest(key) for key in keys]
+
+
+def one_by_one(loaded, keys: list) -> None:
+    """`contains` called once per key (the single-key figure is this loop's time per key)."""
+    contains = loaded.contains
+    for key in keys:
+        contains(key)
+
+
 def plain_bloom(members: list[bytes], fpr: float, seed: int) -> BloomFilter:
     bits = bloom_bits(len(members), fpr)
     bloom = BloomFilter.empty(bits, bloom_hashes(bits, len(members)), seed)
@@ -127,47 +142,36 @@ def plain_bloom(members: list[bytes], fpr: float, seed: int) -> BloomFilter:
 
 
 def profile(loaded: MembershipFilter, keys: list, repeat: int) -> dict[str, Timing]:
-    """Each part of `contains_many` on its own, over the whole batch, on the path now enabled."""
+    """Each step of `contains_many` on its own, over the whole batch, on the filter's answer path."""
+    path = loaded._path
+    tables = loaded.tables
     packed = pack_batch(keys)
-    spec = loaded.feature_spec
-    columns = featurize_columns(packed.data, packed.offsets, spec)
-    scores = score_columns(loaded.forest, columns)
-    boundaries = np.array(loaded.boundaries, dtype=np.int64)
-    regions = region_of(scores, boundaries)
-    in_bloom = np.flatnonzero(np.array([r.mode == "bloom" for r in loaded.regions])[regions])
-    starts, stops = packed.offsets[in_bloom], packed.offsets[in_bloom + 1]
-    hashes = hash_slices(packed.buffer, starts, stops, loaded.hash_seed)
+    regions = path.regions(packed)
+    hashed = tables.hashed[regions]
+    hashes = hashes_where(packed, hashed, tables.seed)
+    parts = {"pack keys": best_of(repeat, lambda: pack_batch(keys))}
+    if path.name == "numpy":
+        columns = featurize_columns(packed.data, packed.offsets, tables.layout)
+        scores = score_columns(tables.forest, columns)
+        parts |= {
+            "features": best_of(repeat, lambda: featurize_columns(packed.data, packed.offsets, tables.layout)),
+            "trees": best_of(repeat, lambda: score_columns(tables.forest, columns)),
+            "regions": best_of(repeat, lambda: region_of(scores, tables.boundary_array)),
+        }
 
-    def probes() -> None:
-        for index, region in enumerate(loaded.regions):
-            if region.mode == "bloom":
-                region.bloom.query_hashes(hashes.select(regions[in_bloom] == index))
+        def answers() -> None:
+            for index, region in enumerate(tables.regions):
+                region.query_hashes(hashes.select(regions == index))
+    else:
+        parts["features + trees + region, one kernel"] = best_of(repeat, lambda: path.regions(packed))
 
-    parts = {
-        "pack keys": best_of(repeat, lambda: pack_batch(keys)),
-        "features": best_of(repeat, lambda: featurize_columns(packed.data, packed.offsets, spec)),
-        "trees": best_of(repeat, lambda: score_columns(loaded.forest, columns)),
-    }
-    if compiled.ENABLED:
-        parts["features + trees, fused per key (what contains_many runs)"] = best_of(
-            repeat, lambda: loaded._scores(packed.data, packed.offsets))
+        def answers() -> None:
+            compiled.answer_regions(regions, hashes.low, hashes.high, path.blob, np.empty(len(keys), dtype=bool))
     return parts | {
-        "regions": best_of(repeat, lambda: region_of(scores, boundaries)),
-        f"hashing ({len(in_bloom) / len(keys):.0%} of keys in Bloom regions)": best_of(
-            repeat, lambda: hash_slices(packed.buffer, starts, stops, loaded.hash_seed)),
-        "probes": best_of(repeat, probes),
+        f"hashing ({hashed.mean():.0%} of keys in Bloom regions)": best_of(
+            repeat, lambda: hashes_where(packed, hashed, tables.seed)),
+        "region answers (probes)": best_of(repeat, answers),
     }
-
-
-@contextlib.contextmanager
-def numpy_only(on: bool):
-    """Run the block on the plain numpy path when `on` (else on whatever path is enabled)."""
-    enabled = compiled.ENABLED
-    compiled.ENABLED = enabled and not on
-    try:
-        yield
-    finally:
-        compiled.ENABLED = enabled
 
 
 def open_seconds(path: Path, cache: Path | None) -> float:
@@ -216,19 +220,22 @@ def main() -> None:
         parser.error("give --artifact or at least one budget to build")
     loaded = open_filter(path)
     queries = [k.decode("utf-8") for k in keys] if args.key_type == "str" else keys
-    paths = ["numpy", "compiled"] if compiled.ENABLED else ["numpy"]
+    paths = list(available_paths())
 
     bloom = plain_bloom(corpus.members, target, config.filters.hash_seed)
     base = best_of(args.repeat, lambda: bloom.query(keys))
+    xxh3 = best_of(args.repeat, lambda: xxh3_loop(keys))
+    xxh3_single = best_of(args.repeat, lambda: xxh3_loop(keys[:SINGLE_KEYS])).cpu / SINGLE_KEYS
     sample = keys[:SINGLE_KEYS]
     b50, b99 = single_key_latency(bloom, sample)
-    batch, single, parts, answers = {}, {}, {}, {}
+    batch, single, single_mean, parts, answers = {}, {}, {}, {}, {}
     for name in paths:
-        with numpy_only(name == "numpy"):
-            answers[name] = loaded.contains_many(queries)
-            batch[name] = best_of(args.repeat, lambda: loaded.contains_many(queries))
-            single[name] = single_key_latency(loaded, queries[:SINGLE_KEYS])
-            parts[name] = profile(loaded, queries, args.repeat)
+        on_path = loaded.using(name)
+        answers[name] = on_path.contains_many(queries)
+        batch[name] = best_of(args.repeat, lambda: on_path.contains_many(queries))
+        single[name] = single_key_latency(on_path, queries[:SINGLE_KEYS])
+        single_mean[name] = best_of(args.repeat, lambda: one_by_one(on_path, queries[:SINGLE_KEYS])).cpu / SINGLE_KEYS
+        parts[name] = profile(on_path, queries, args.repeat)
     if not all(np.array_equal(answers[name], answers["numpy"]) for name in paths):
         raise SystemExit("the numpy and compiled paths answered differently: a bug, please report it")
     size = path.stat().st_size
@@ -242,6 +249,11 @@ def main() -> None:
     for name, timing in [*((f"contains_many, {p}", batch[p]) for p in paths), ("plain Bloom", base)]:
         print(f"  {name:24s} {len(keys) / timing.cpu:12,.0f} keys/s CPU ({len(keys) / timing.wall:12,.0f} wall)   "
               f"{timing.per_key_us(len(keys))}   / Bloom speed {base.cpu / timing.cpu:.3f} CPU")
+    print(f"\nagainst a loop of one xxh3_64 call per key (bytes keys; {len(keys) / xxh3.cpu:,.0f} keys/s CPU, "
+          f"{xxh3_single * 1e9:.0f} ns a call over {SINGLE_KEYS:,} keys):")
+    for name in paths:
+        print(f"  {name:14s} contains_many {xxh3.cpu / batch[name].cpu:6.3f} of the xxh3 loop's keys/s;   "
+              f"contains {single_mean[name] * 1e6:6.2f} us a key = {single_mean[name] / xxh3_single:6.1f} xxh3 calls")
     print(f"\nsingle key, {len(sample):,} calls (wall clock per call):")
     for name in paths:
         p50, p99 = single[name]
@@ -249,7 +261,7 @@ def main() -> None:
     print(f"  {'plain Bloom':24s} p50 {b50:7.1f} us   p99 {b99:7.1f} us")
     print(f"\nprofile of contains_many's parts over the same {len(keys):,} keys (best of {args.repeat}), us/key CPU:")
     print(f"  {'part':62s}" + "".join(f"{p:>10s}" for p in paths))
-    for part in parts[paths[-1]]:
+    for part in dict.fromkeys(part for p in paths for part in parts[p]):
         cells = "".join(f"{parts[p][part].cpu / len(keys) * 1e6:10.3f}" if part in parts[p] else f"{'-':>10s}" for p in paths)
         print(f"  {part:62s}{cells}")
 
@@ -264,8 +276,8 @@ def main() -> None:
             point_bytes = row["path"].stat().st_size
             cells = ""
             for name in paths:
-                with numpy_only(name == "numpy"):
-                    rate = len(few) / best_of(args.repeat, lambda: point.contains_many(few)).cpu
+                on_path = point.using(name)
+                rate = len(few) / best_of(args.repeat, lambda: on_path.contains_many(few)).cpu
                 cells += f" {rate:>16,.0f} {rate / (len(keys) / base.cpu):>8.3f}"
             print(f"  {row['budget']:>17d} {row['trees']:>5d} {point_bytes:>9,d} {point_bytes / bloom.nbytes:>8.3f}{cells}")
 

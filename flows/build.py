@@ -36,17 +36,19 @@ from prefect.utilities.annotations import quote
 
 from tamis import corpus as corpus_stage
 from tamis import publish, report, report_page, verify
+from tamis.booster import compile_trees
 from tamis.config import BuildConfig, require_paths
 from tamis.drift import Drift, measure_drift
 from tamis.errors import BadInput
 from tamis.features import default_feature_spec, featurize
 from tamis.filters import RegionFilter, chunk_words, empty_filters, merge_words
 from tamis.loader import open_filter
-from tamis.model import ModelChoice, compile_trees, fit_model, fit_model_on_cluster
+from tamis.model import ModelChoice, fit_model, fit_model_on_cluster
 from tamis.package import package_artifact
 from tamis.progress import Progress, StageEvent, no_progress
 from tamis.provenance import build_provenance
-from tamis.regions import RegionPlan, plan_regions, region_of
+from tamis.query import region_of
+from tamis.regions import RegionPlan, plan_regions
 from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
 from tamis.trees import Forest, score_batch
 

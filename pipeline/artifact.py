@@ -23,19 +23,17 @@ Layout of format 1.0 (all integers little-endian):
     section table entry: {"name": str, "dtype": "<u8" | "<i8" | "<f4" | ..., "shape": [int, ...],
                           "offset": absolute byte offset, "length": bytes, "xxh3_64": u64 of those bytes}
 
-The magic's first byte has the high bit set and it ends in CR LF, so a 7-bit or newline-translating
-copy is caught at once (common practice for binary formats). Map keys in the header are sorted and
-nothing time-dependent is added here, so equal inputs give byte-identical files. Reading takes one
-copy of the file into memory, checks it and returns read-only numpy views over that copy: a file
-rewritten or truncated in place afterwards changes nothing already read (a shared mapping would
-answer from the new bytes unchecked, or fault), and nothing in the file is ever executed.
+The constants live in `tamis.format`; FORMAT.md specifies the whole format. Map keys in the header
+are sorted and nothing time-dependent is added here, so equal inputs give byte-identical files.
+Reading takes one copy of the file into memory, checks it and returns read-only numpy views over
+that copy: a file rewritten or truncated in place afterwards changes nothing already read (a shared
+mapping would answer from the new bytes unchecked, or fault), and nothing in the file is ever executed.
 """
 
 from __future__ import annotations
 
 import math
 import os
-import struct
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
@@ -45,23 +43,17 @@ import msgpack
 import numpy as np
 import xxhash
 
-MAGIC = b"\x89TAMIS\r\n"
-FORMAT_MAJOR = 1
-FORMAT_MINOR = 0
-# magic, major, minor, header length, header checksum, reserved.
-PREAMBLE = struct.Struct("<8sHHIQ8x")
-# Sections start at multiples of 64 bytes: a cache line, and a multiple of every dtype's size.
-ALIGNMENT = 64
-# The header is metadata only; anything larger belongs in a section. Checked before reading it.
-MAX_HEADER_BYTES = 1 << 20
-# The deepest nesting of maps and lists a header may have. Ours nest 4 deep (meta, regions, a
-# region, its fields); the bound keeps every walk over a hostile header short and far from
-# Python's recursion limit (a header of 546 bytes can nest lists 494 deep). The header's bytes
-# bound the number of values, so with this every check of the header is bounded in work too.
-MAX_HEADER_DEPTH = 32
-# The most sections a table may list: ours hold the forest's 6 and one a backup filter.
-MAX_SECTIONS = 4096
-ALLOWED_DTYPES = frozenset({"|u1", "|i1", "<u2", "<i2", "<u4", "<i4", "<u8", "<i8", "<f4", "<f8"})
+from tamis.format import (
+    ALIGNMENT,
+    ALLOWED_DTYPES,
+    FORMAT_MAJOR,
+    FORMAT_MINOR,
+    MAGIC,
+    MAX_HEADER_BYTES,
+    MAX_HEADER_DEPTH,
+    MAX_SECTIONS,
+    PREAMBLE,
+)
 
 
 class ArtifactError(Exception):

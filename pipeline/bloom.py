@@ -17,7 +17,7 @@ from typing import Sequence
 import numpy as np
 import xxhash
 
-from tamis import compiled
+from tamis.format import MAX_BLOOM_BITS, MAX_BLOOM_HASHES, SEED_LIMIT, WORD_BITS
 
 LN2 = math.log(2.0)
 
@@ -84,13 +84,6 @@ def lower_bound_bits(n: int, fpr: float) -> float:
 # Bits from m up to the end of the last word are always zero.
 # ---------------------------------------------------------------------------------------------------
 
-WORD_BITS = 64
-# x + y < 2m must fit in a uint64 (see the probing loop above).
-MAX_BITS = 2**63
-# k = log2(1/f) at the optimum, so 64 probes already reach f = 2^-64; more is never sized, and the
-# cap keeps a hostile stored value from making one query loop for long.
-MAX_HASHES = 64
-SEED_LIMIT = 2**64
 _LOW64 = (1 << 64) - 1
 
 
@@ -175,6 +168,8 @@ class BloomFilter:
     seed: int
     words: np.ndarray
 
+    hashed = True  # its answer needs the key's hash (tamis.query)
+
     @classmethod
     def empty(cls, bits: int, hashes: int, seed: int) -> BloomFilter:
         """A filter with every bit clear."""
@@ -183,10 +178,10 @@ class BloomFilter:
     @classmethod
     def from_words(cls, words: np.ndarray, bits: int, hashes: int, seed: int) -> BloomFilter:
         """Wrap existing words, checking that they fit the parameters."""
-        if not 1 <= bits <= MAX_BITS:
+        if not 1 <= bits <= MAX_BLOOM_BITS:
             raise ValueError(f"a Bloom filter needs between 1 and 2^63 bits, got {bits}")
-        if not 1 <= hashes <= MAX_HASHES:
-            raise ValueError(f"a Bloom filter needs between 1 and {MAX_HASHES} probes per key, got {hashes}")
+        if not 1 <= hashes <= MAX_BLOOM_HASHES:
+            raise ValueError(f"a Bloom filter needs between 1 and {MAX_BLOOM_HASHES} probes per key, got {hashes}")
         check_seed(seed)
         if words.dtype != np.uint64 or words.shape != (word_count(bits),):
             raise ValueError(
@@ -213,17 +208,16 @@ class BloomFilter:
 
     def query_hashes(self, key_hashes: KeyHashes) -> np.ndarray:
         """`query` for keys already hashed with this filter's seed."""
-        if compiled.in_use():  # the same positions, one key at a time, stopping at its first clear bit
-            answers = np.empty(len(key_hashes), dtype=bool)
-            compiled.bloom_query(key_hashes.low, key_hashes.high, self.bits, self.hashes, self.words, answers)
-            return answers
         positions = probe_positions(key_hashes, self.bits, self.hashes)
         words = self.words[positions >> np.uint64(6)]
         return np.logical_and.reduce((words & _bit_masks(positions)) != 0, axis=0)
 
     def contains(self, key: bytes) -> bool:
         """`query` for one key, in plain Python integers (same positions, no array set-up)."""
-        value = xxhash.xxh3_128_intdigest(key, self.seed)
+        return self.contains_hash(xxhash.xxh3_128_intdigest(key, self.seed))
+
+    def contains_hash(self, value: int) -> bool:
+        """`contains` of the key whose xxh3_128 under this filter's seed is `value` (a Python int)."""
         m = self.bits
         x = (value & _LOW64) % m
         y = (value >> 64) % m

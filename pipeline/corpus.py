@@ -44,7 +44,6 @@ from tamis.config import DEFAULT_COUNT_COLUMN, CorpusSettings
 from tamis.errors import BadInput
 from tamis.keylines import KeyLinesError, split_key_lines
 from tamis.keylines import line_of_offset as _line_of_offset
-from tamis.model import training_sample
 
 TABLE_SUFFIXES = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".ndjson": "ndjson", ".jsonl": "ndjson"}
 
@@ -554,9 +553,18 @@ def _subset(keys: list[bytes], counts: np.ndarray, mask: np.ndarray) -> KeySet:
     return KeySet([keys[i] for i in picked], counts[picked])
 
 
+def training_sample(rows: int, size: int, seed: int) -> np.ndarray:
+    """Indices of the training non-members that train, ascending: all `rows` when there are at
+    most `size`, else `size` of them drawn uniformly without replacement from a seeded generator."""
+    if rows <= size:
+        return np.arange(rows)
+    return np.sort(np.random.default_rng(seed).choice(rows, size, replace=False))
+
+
+
 def sample_keys(keys: KeySet, size: int, seed: int) -> KeySet:
     """At most `size` of the keys, in their order: the sample the model stage would draw from their
-    feature rows (`tamis.model.training_sample`), drawn before any feature is computed."""
+    feature rows (`training_sample`), drawn before any feature is computed."""
     if len(keys.keys) <= size:
         return keys
     pick = training_sample(len(keys.keys), size, seed)

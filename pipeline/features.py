@@ -27,9 +27,9 @@ An empty key has every feature 0.
 
 Two implementations compute the same values: `featurize_packed` (and `featurize` on a list) works
 on a whole batch with numpy, one pass per quantity over all bytes of a chunk of keys, with no Python
-per key; `featurize_one` is plain Python for a single key, where array set-up would dominate. When
-numba is installed, the batch functions run `tamis.compiled.featurize_into` instead: one pass per
-key, the same values bit for bit.
+per key; `featurize_one` is plain Python for a single key, where array set-up would dominate. These
+are the reference; the compiled query path (`tamis.compiled`, chosen in `tamis.query`) computes the
+same values key by key and must match them bit for bit (tests/test_compiled.py).
 """
 
 from __future__ import annotations
@@ -42,9 +42,7 @@ from itertools import groupby
 
 import numpy as np
 
-from tamis import compiled
-
-FEATURES_VERSION = 1
+from tamis.format import FEATURES_VERSION
 
 CLASSES = ("lower", "upper", "digit", "separator", "other", "nonascii")
 _LOWER, _UPPER, _DIGIT, _SEPARATOR, _OTHER, _NONASCII = range(len(CLASSES))
@@ -279,9 +277,6 @@ def featurize_columns(data: np.ndarray, offsets: np.ndarray, spec: Mapping | Fea
     check_packed(data, offsets)
     n = len(offsets) - 1
     columns = np.empty((layout.count, n), dtype=np.float32)
-    if compiled.in_use():
-        compiled.featurize_into(data, offsets, *layout.kernel_tables, columns)
-        return columns
     for start in range(0, n, _CHUNK_KEYS):
         stop = min(start + _CHUNK_KEYS, n)
         chunk_offsets = offsets[start : stop + 1] - offsets[start]

@@ -20,8 +20,7 @@ import numpy as np
 
 from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
 
-FilterMode = Literal["bloom", "yes", "no"]
-FILTER_MODES = ("bloom", "yes", "no")
+FilterMode = Literal["bloom", "yes", "no"]  # tamis.format.REGION_MODES
 
 
 @dataclass(frozen=True, eq=False)

@@ -6,10 +6,11 @@
     bans.contains_many(["a", b"b"])             # numpy bool array, in input order
     bans.contains_many(frame["handle"])         # a polars String or Binary column works too
 
-A key is answered the way the build inserted it: features (`tamis.features`) -> integer score
-(`tamis.trees`) -> region by the integer boundaries (`tamis.regions.region_of`) -> that region's
-filter ("yes", "no", or a Bloom filter). Every check runs when the file is opened; any file that
-cannot be used raises FilterLoadError, and nothing stored in it is ever executed.
+A key is answered the way the build inserted it, by the query path (`tamis.query`): features ->
+integer score -> region by the integer boundaries -> that region's answer ("yes", "no", or its
+Bloom filter), on the numpy reference or the compiled path (`answer_path`, `using`). Every check
+runs when the file is opened; any file that cannot be used raises FilterLoadError, and nothing
+stored in it is ever executed.
 
 `open_filter(path, on_error="maybe")` never raises for an unusable file: it logs and warns once,
 and returns a degraded filter that answers True ("maybe") for every key, so a service that starts
@@ -20,40 +21,47 @@ A "maybe" (True) is only a hint: confirm it against the authoritative set before
 
 from __future__ import annotations
 
-import bisect
 import copy
+import dataclasses
 import logging
 import os
-import sys
 import warnings
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
-from typing import Any, Iterable, Literal, Sequence
+from typing import Any, Iterable, Literal
 
 import numpy as np
 
-from tamis import compiled
 from tamis.artifact import ArtifactError, load_artifact
-from tamis.bloom import BloomFilter, KeyHashes, hash_slices
-from tamis.features import FeatureLayout, feature_layout, featurize_columns, featurize_one
-from tamis.filters import FILTER_MODES
-from tamis.package import HASHING, HEADER_KIND
-from tamis.regions import region_of
-from tamis.trees import Forest, score_columns, score_values
+from tamis.bloom import BloomFilter
+from tamis.features import feature_layout
+from tamis.format import HASHING, HEADER_KIND, REGION_MODES
+from tamis.query import (
+    CompiledPath,
+    Constant,
+    NumpyPath,
+    PackedKeys,
+    QueryTables,
+    RegionAnswer,
+    available_paths,
+    default_path,
+    key_bytes,
+    pack_batch,
+    query_path,
+)
+from tamis.trees import Forest
 
 LOG = logging.getLogger(__name__)
 
 # Keys answered per pass of `contains_many`, so that a batch of any size needs only a few MB of
-# work arrays (the feature columns take 4 bytes x features per key: 5.8 MB here for the demo's
-# 89 features), while each pass is long enough that its fixed numpy costs do not show. The answers
-# do not depend on it.
+# work arrays (the numpy path's feature columns take 4 bytes x features per key: 5.8 MB here for
+# the demo's 89 features), while each pass is long enough that its fixed costs do not show. The
+# answers do not depend on it.
 LOOKUP_CHUNK_KEYS = 16_384
 
-# The ways an opened filter answers, each its own code for the same answers: the batch path in
-# numpy (the reference), the same batch path in compiled kernels (when numba is installed), and the
-# single-key path in plain Python. `contains_many` takes the compiled batch path when it is there.
-NUMPY_PATH, COMPILED_PATH, SINGLE_KEY_PATH = "numpy", "compiled", "single"
+# A single-key answer path is named after its query path with this suffix ("numpy-single").
+SINGLE_KEY_SUFFIX = "-single"
 
 OnError = Literal["raise", "maybe"]
 ON_ERROR_CHOICES = ("raise", "maybe")
@@ -63,115 +71,6 @@ class FilterLoadError(ArtifactError):
     """The artifact cannot be used: unreadable, corrupted, of an unknown format, or inconsistent."""
 
 
-@dataclass(frozen=True, eq=False)
-class RegionAnswer:
-    """How one region answers: always ("yes"), never ("no"), or by its Bloom filter."""
-
-    mode: str
-    bloom: BloomFilter | None
-
-
-# ---------------------------------------------------------------------------------------------------
-# Keys in: a list, tuple, iterable or numpy array of str/bytes, or a polars String/Binary Series.
-# ---------------------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True, eq=False)
-class PackedKeys:
-    """A batch of keys as one bytes buffer and int64 offsets: key i is buffer[offsets[i]:offsets[i+1]]."""
-
-    buffer: bytes
-    offsets: np.ndarray
-
-    def __len__(self) -> int:
-        return len(self.offsets) - 1
-
-    @property
-    def data(self) -> np.ndarray:
-        return np.frombuffer(self.buffer, dtype=np.uint8)
-
-    def split(self) -> list[bytes]:
-        """The keys one by one."""
-        bounds = self.offsets.tolist()
-        return [self.buffer[start:stop] for start, stop in zip(bounds, bounds[1:])]
-
-
-def _bytes_of(keys: Sequence[Any]) -> list[bytes]:
-    """Keys as bytes (str is encoded as UTF-8); TypeError names the first key that is neither."""
-    try:
-        return [key if isinstance(key, bytes) else key.encode("utf-8") for key in keys]
-    except AttributeError:
-        bad = next(key for key in keys if not isinstance(key, (bytes, str)))
-        raise TypeError(f"keys must be str or bytes, got {type(bad).__name__} {bad!r}") from None
-
-
-def _packed(buffer: bytes, lengths: Iterable[int], count: int) -> PackedKeys:
-    offsets = np.zeros(count + 1, dtype=np.int64)
-    np.cumsum(np.fromiter(lengths, dtype=np.int64, count=count), out=offsets[1:])
-    return PackedKeys(buffer, offsets)
-
-
-def _pack_list(keys: list | tuple) -> PackedKeys:
-    """Keys packed with one join, without a Python step per key where that is safe: a batch of
-    bytes joins as it is; a batch of str joins and encodes once, and when the encoded text is as
-    long as the text, every character took one byte, so the character counts are the byte lengths.
-    Anything else (non-ASCII text, mixed or subclassed types) is encoded key by key."""
-    kinds = set(map(type, keys))
-    if kinds <= {bytes}:
-        return _packed(b"".join(keys), map(len, keys), len(keys))
-    if kinds == {str}:
-        text = "".join(keys)
-        buffer = text.encode("utf-8")
-        if len(buffer) == len(text):
-            return _packed(buffer, map(len, keys), len(keys))
-    encoded = _bytes_of(keys)
-    return _packed(b"".join(encoded), map(len, encoded), len(encoded))
-
-
-def _is_polars_series(keys: Any) -> bool:
-    # polars is never imported here: a caller who passes a Series has imported it already.
-    polars = sys.modules.get("polars")
-    return polars is not None and isinstance(keys, polars.Series)
-
-
-def _pack_polars(series: Any) -> PackedKeys:
-    """A polars String or Binary Series packed from polars' own buffers: its byte lengths and its
-    values joined into one buffer, with no Python object per key."""
-    polars = sys.modules["polars"]  # imported by the caller (see _is_polars_series)
-    dtype = series.dtype
-    if series.null_count():
-        first = int(series.is_null().arg_max())
-        raise TypeError(f"keys must be str or bytes, got a null at position {first} of the polars Series")
-    if dtype == polars.String:
-        lengths = series.str.len_bytes()
-        buffer = series.str.join("").item().encode("utf-8") if len(series) else b""
-    elif dtype == polars.Binary:
-        lengths = series.bin.size()
-        buffer = b"".join(series.to_list())  # polars offers no join of binary values
-    else:
-        raise TypeError(f"a polars Series of keys must have dtype String or Binary, got {dtype}")
-    offsets = np.zeros(len(series) + 1, dtype=np.int64)
-    np.cumsum(lengths.cast(polars.Int64).to_numpy(), out=offsets[1:])
-    return PackedKeys(buffer, offsets)
-
-
-def pack_batch(keys: Iterable[str | bytes] | np.ndarray | Any) -> PackedKeys:
-    """Any batch that `contains_many` takes, packed; TypeError for anything else."""
-    if isinstance(keys, (str, bytes)):
-        raise TypeError("contains_many takes a sequence of keys; use contains for a single key")
-    if _is_polars_series(keys):
-        return _pack_polars(keys)
-    if isinstance(keys, np.ndarray):
-        if keys.ndim != 1 or keys.dtype.kind not in "SUO":
-            raise TypeError(
-                f"a numpy batch of keys must be a 1-d array of str or bytes, got {keys.dtype} of shape {keys.shape}"
-            )
-        keys = keys.tolist()
-    elif not isinstance(keys, (list, tuple)):
-        keys = list(keys)
-    return _pack_list(keys)
-
-
 # ---------------------------------------------------------------------------------------------------
 # An opened artifact
 # ---------------------------------------------------------------------------------------------------
@@ -179,16 +78,14 @@ def pack_batch(keys: Iterable[str | bytes] | np.ndarray | Any) -> PackedKeys:
 
 @dataclass(frozen=True, eq=False)
 class MembershipFilter:
-    """An opened artifact, read from `path` in container format `format` ("major.minor")."""
+    """An opened artifact, read from `path` in container format `format` ("major.minor"), answering
+    on `answer_path` ("numpy" or "compiled", `tamis.query`)."""
 
     path: Path
     format: str
     header: dict
-    feature_spec: dict
-    forest: Forest
-    boundaries: tuple[int, ...]
-    regions: tuple[RegionAnswer, ...]
-    hash_seed: int
+    tables: QueryTables
+    answer_path: str
 
     degraded = False
 
@@ -199,28 +96,36 @@ class MembershipFilter:
         "degraded": False."""
         return {**copy.deepcopy(self.header), "format": self.format, "degraded": False}
 
-    # Derived once from the checked header, on first use.
+    @property
+    def forest(self) -> Forest:
+        return self.tables.forest
+
+    @property
+    def feature_spec(self) -> dict:
+        return self.tables.layout.spec
+
+    @property
+    def boundaries(self) -> tuple[int, ...]:
+        return self.tables.boundaries
+
+    @property
+    def regions(self) -> tuple[RegionAnswer, ...]:
+        return self.tables.regions
+
+    @property
+    def hash_seed(self) -> int:
+        return self.tables.seed
 
     @cached_property
-    def _layout(self) -> FeatureLayout:
-        return feature_layout(self.feature_spec)
+    def _path(self) -> NumpyPath | CompiledPath:
+        return query_path(self.tables, self.answer_path)
 
-    @cached_property
-    def _boundary_array(self) -> np.ndarray:
-        return np.array(self.boundaries, dtype=np.int64)
-
-    @cached_property
-    def _answer_by_mode(self) -> np.ndarray:
-        """Per region, the answer when no Bloom filter is asked: True for "yes", False otherwise."""
-        return np.array([region.mode == "yes" for region in self.regions])
-
-    @cached_property
-    def _is_bloom(self) -> np.ndarray:
-        return np.array([region.mode == "bloom" for region in self.regions])
-
-    @cached_property
-    def _bloom_indices(self) -> tuple[int, ...]:
-        return tuple(i for i, region in enumerate(self.regions) if region.mode == "bloom")
+    def using(self, answer_path: str) -> MembershipFilter:
+        """This filter answering on `answer_path` ("numpy", the reference, or "compiled", which
+        needs numba); both give the same answers. ValueError for a path this process cannot run."""
+        chosen = dataclasses.replace(self, answer_path=answer_path)
+        chosen._path.warm_up()
+        return chosen
 
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
         """For each key, True when it may be a member and False when it surely is not.
@@ -232,78 +137,44 @@ class MembershipFilter:
         return self.answer_packed(pack_batch(keys))
 
     def answer_packed(self, packed: PackedKeys) -> np.ndarray:
-        """`contains_many` of keys already packed (`pack_batch`)."""
-        answers = np.zeros(len(packed), dtype=bool)
+        """`contains_many` of keys already packed (`tamis.query.pack_batch`), a chunk at a time."""
+        answers = np.empty(len(packed), dtype=bool)
+        answer = self._path.answer_packed
         for start in range(0, len(packed), LOOKUP_CHUNK_KEYS):
             stop = min(start + LOOKUP_CHUNK_KEYS, len(packed))
-            answers[start:stop] = self._answer_chunk(packed, start, stop)
-        return answers
-
-    def _scores(self, data: np.ndarray, offsets: np.ndarray) -> np.ndarray:
-        """Integer scores of packed keys; compiled, features and trees run key by key (the same
-        scores as featurize_columns then score_columns, without the feature matrix)."""
-        if not compiled.in_use():
-            return score_columns(self.forest, featurize_columns(data, offsets, self._layout))
-        scores = np.empty(len(offsets) - 1, dtype=np.int64)
-        compiled.score_packed(data, offsets, *self._layout.kernel_tables, self._layout.count,
-                              *self.forest._levels.kernel_arrays, self.forest.bias, scores)
-        return scores
-
-    def warm_up(self) -> None:
-        """Compile (or load from numba's cache) the kernels `contains_many` runs, on empty input of
-        the types it passes them, so the first batch does not pay for it; nothing without numba."""
-        if compiled.ENABLED:
-            self._scores(np.zeros(0, dtype=np.uint8), np.zeros(1, dtype=np.int64))
-            empty = np.zeros(0, dtype=np.uint64)
-            for index in self._bloom_indices:
-                self.regions[index].bloom.query_hashes(KeyHashes(empty, empty))
-
-    def _answer_chunk(self, packed: PackedKeys, start: int, stop: int) -> np.ndarray:
-        offsets = packed.offsets[start : stop + 1]
-        data = packed.data[offsets[0] : offsets[-1]]
-        region_index = region_of(self._scores(data, offsets - offsets[0]), self._boundary_array)
-        answers = self._answer_by_mode[region_index]
-        in_bloom = np.flatnonzero(self._is_bloom[region_index])
-        if len(in_bloom):
-            hashes = hash_slices(packed.buffer, offsets[in_bloom], offsets[in_bloom + 1], self.hash_seed)
-            bloom_regions = region_index[in_bloom]
-            for index in self._bloom_indices:
-                picked = bloom_regions == index
-                if picked.any():
-                    answers[in_bloom[picked]] = self.regions[index].bloom.query_hashes(hashes.select(picked))
+            offsets = packed.offsets[start : stop + 1]
+            chunk = PackedKeys(packed.buffer[offsets[0] : offsets[-1]], offsets - offsets[0])
+            answers[start:stop] = answer(chunk)
         return answers
 
     def contains(self, key: str | bytes) -> bool:
-        """`contains_many` for one key, in plain Python without array set-up: the same answer."""
-        (data,) = _bytes_of((key,))
-        score = score_values(self.forest, featurize_one(data, self._layout))
-        region = self.regions[bisect.bisect_right(self.boundaries, score)]
-        if region.mode == "bloom":
-            return region.bloom.contains(data)
-        return region.mode == "yes"
+        """`contains_many` for one key, without array set-up: the same answer."""
+        if type(key) is not bytes:
+            key = key_bytes(key)
+        return self._path.contains(key)
 
     def __contains__(self, key: str | bytes) -> bool:
         return self.contains(key)
 
     def answers_through(self, path: str, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
-        """`contains_many` of `keys` computed through one named answer path of `answer_paths()`,
-        so that a check can compare the paths; a service has no need of it."""
+        """`contains_many` of `keys` computed through one named answer path of `answer_paths()`
+        (a query path's batch call, or its single-key call key by key), so that a check can
+        compare the paths; a service has no need of it."""
         if path not in answer_paths():
             raise ValueError(f"answer path {path!r} is not available here; the paths are {list(answer_paths())}")
-        if path == SINGLE_KEY_PATH:
-            return np.fromiter(map(self.contains, pack_batch(keys).split()), dtype=bool)
-        if path == NUMPY_PATH:
-            with compiled.numpy_reference():
-                return self.contains_many(keys)
-        return self.contains_many(keys)
+        query_path_name = path.removesuffix(SINGLE_KEY_SUFFIX)
+        on_path = self if query_path_name == self.answer_path else self.using(query_path_name)
+        if path.endswith(SINGLE_KEY_SUFFIX):
+            return np.fromiter(map(on_path.contains, pack_batch(keys).split()), dtype=bool)
+        return on_path.contains_many(keys)
 
 
 def answer_paths() -> tuple[str, ...]:
-    """The answer paths an opened filter has in this process: numpy and single-key always,
-    compiled when numba is installed and enabled."""
-    if compiled.ENABLED:
-        return (NUMPY_PATH, COMPILED_PATH, SINGLE_KEY_PATH)
-    return (NUMPY_PATH, SINGLE_KEY_PATH)
+    """The answer paths an opened filter has in this process: the batch call and the single-key
+    call of each query path (`tamis.query.available_paths`: numpy always, compiled when numba is
+    installed and enabled)."""
+    paths = available_paths()
+    return (*paths, *(name + SINGLE_KEY_SUFFIX for name in paths))
 
 
 @dataclass(frozen=True, eq=False)
@@ -327,7 +198,7 @@ class DegradedFilter:
         return np.ones(len(pack_batch(keys)), dtype=bool)
 
     def contains(self, key: str | bytes) -> bool:
-        _bytes_of((key,))
+        key_bytes(key)
         return True
 
     def __contains__(self, key: str | bytes) -> bool:
@@ -356,11 +227,11 @@ def _boundaries(path: Path, header: dict) -> tuple[int, ...]:
 
 
 def _region(path: Path, index: int, entry: Any, sections: dict, seed: int) -> RegionAnswer:
-    if not isinstance(entry, dict) or entry.get("mode") not in FILTER_MODES:
+    if not isinstance(entry, dict) or entry.get("mode") not in REGION_MODES:
         mode = entry.get("mode") if isinstance(entry, dict) else entry
-        raise FilterLoadError(f"{path}: region {index} has unknown mode {mode!r} (known: {list(FILTER_MODES)})")
+        raise FilterLoadError(f"{path}: region {index} has unknown mode {mode!r} (known: {list(REGION_MODES)})")
     if entry["mode"] != "bloom":
-        return RegionAnswer(entry["mode"], None)
+        return Constant(entry["mode"] == "yes")
     name = entry.get("section")
     if not isinstance(name, str) or name not in sections:
         raise FilterLoadError(f"{path}: region {index} names section {name!r}, which the file does not hold")
@@ -370,10 +241,10 @@ def _region(path: Path, index: int, entry: Any, sections: dict, seed: int) -> Re
         bloom = BloomFilter.from_words(sections[name], entry["bits"], entry["hashes"], seed)
     except ValueError as error:
         raise FilterLoadError(f"{path}: region {index}: {error}") from error
-    return RegionAnswer("bloom", bloom)
+    return bloom
 
 
-def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict) -> MembershipFilter:
+def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict, answer_path: str) -> MembershipFilter:
     if header.get("kind") != HEADER_KIND:
         raise FilterLoadError(f"{path}: artifact kind is {header.get('kind')!r}, not {HEADER_KIND!r}")
     hashing = _field(path, header, "hash", dict)
@@ -398,18 +269,17 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict) -
             f"the header lists {len(entries)}"
         )
     regions = tuple(_region(path, i, entry, sections, seed) for i, entry in enumerate(entries))
-    opened = MembershipFilter(path, f"{version[0]}.{version[1]}", header, spec, forest, boundaries, regions, seed)
-    opened.warm_up()
-    return opened
+    tables = QueryTables(layout, forest, boundaries, regions, seed)
+    return MembershipFilter(path, f"{version[0]}.{version[1]}", header, tables, answer_path).using(answer_path)
 
 
-def _open_checked(path: Path) -> MembershipFilter:
+def _open_checked(path: Path, answer_path: str) -> MembershipFilter:
     """Every failure to open is a FilterLoadError: the container's own errors, the header's, and
     anything else a hostile file might still provoke, named with its type (the checks above are
     meant to leave nothing for this last line to catch)."""
     try:
         loaded = load_artifact(path)
-        return _parse(path, loaded.version, loaded.header, loaded.sections)
+        return _parse(path, loaded.version, loaded.header, loaded.sections, answer_path)
     except FilterLoadError:
         raise
     except ArtifactError as error:
@@ -418,8 +288,14 @@ def _open_checked(path: Path) -> MembershipFilter:
         raise FilterLoadError(f"{path}: cannot be used ({type(error).__name__}: {error})") from error
 
 
-def open_filter(path: str | os.PathLike, on_error: OnError = "raise") -> MembershipFilter | DegradedFilter:
+def open_filter(
+    path: str | os.PathLike, on_error: OnError = "raise", answer_path: str | None = None
+) -> MembershipFilter | DegradedFilter:
     """Open an artifact written by `tamis.package.package_artifact`.
+
+    answer_path: "numpy" or "compiled" (`tamis.query`); by default the compiled path when numba is
+    installed, the numpy path otherwise. Both give the same answers; `MembershipFilter.using`
+    switches an opened filter.
 
     on_error="raise" (the default): raise FilterLoadError if the file is unusable.
     on_error="maybe": return a `DegradedFilter` instead, which answers True for every key, after
@@ -432,7 +308,7 @@ def open_filter(path: str | os.PathLike, on_error: OnError = "raise") -> Members
         raise ValueError(f"on_error must be one of {list(ON_ERROR_CHOICES)}, got {on_error!r}")
     path = Path(path)
     try:
-        return _open_checked(path)
+        return _open_checked(path, answer_path or default_path())
     except FilterLoadError as error:
         if on_error == "raise":
             raise

@@ -1,4 +1,4 @@
-"""The model stage: train a gradient-boosted classifier, pick its capacity by artifact bytes, compile it.
+"""The model stage: train a gradient-boosted classifier and pick its capacity by artifact bytes.
 
 The classifier (LightGBM, binary log-loss) learns members (label 1, every one of them) against a
 sample of training non-members (label 0, weighted by their lookup counts). Its capacity is chosen by
@@ -8,10 +8,8 @@ prices the filters from the compiled integer scores of all members and of valida
 the model never trained on. Every candidate (leaves x learning rate) grows tree by tree; at every
 checkpoint its prefix is compiled and priced, and the cheapest prefix of all candidates wins.
 On a Dask cluster (`fit_model_on_cluster`), LightGBM's Dask interface trains each candidate up to
-its tree cap and the same pricing walks its prefixes; dask is imported only there.
-
-Compilation turns LightGBM's trees (`Booster.dump_model()`) into a `tamis.trees.Forest`:
-thresholds snapped to float32, leaf values quantised to integers.
+its tree cap and the same pricing walks its prefixes; dask is imported only there. Compiling the
+trees into the integer forest is `tamis.booster`; the settings are `tamis.config.ModelSettings`.
 """
 
 from __future__ import annotations
@@ -25,93 +23,16 @@ from dataclasses import dataclass, field
 import lightgbm as lgb
 import numpy as np
 
-from tamis.trees import (
-    CHILD_DTYPES,
-    INT32_LIMIT,
-    MAX_TREE_LEAVES,
-    MAX_TREES,
-    TREE_SPLITS_DTYPES,
-    VALUE_DTYPES,
-    Forest,
-    leaf_indices,
-    narrowest_dtype,
-)
+from tamis.booster import RawTree, booster_trees, compile_trees
+from tamis.config import WEIGHTINGS, ModelSettings
+from tamis.corpus import training_sample
+from tamis.trees import Forest, leaf_indices
 
 # Bytes the forest adds to an artifact beyond its sections: its meta in the msgpack header (about
 # 50 bytes) and, for each of its 6 sections, a header entry (name, dtype, offset, length, checksum:
 # about 50 bytes) plus 32 bytes of 64-byte alignment padding on average. The same for every
 # candidate, so it moves the totals, never the choice.
 FOREST_OVERHEAD_BYTES = 50 + 6 * (50 + 32)
-
-# Quantisation. Leaf values become round(raw * scale) with scale a power of two, so score / scale
-# differs from LightGBM's raw score (log-odds) by at most trees * 0.5 / scale. Each tree's integer
-# midpoint moves into the bias, which leaves the sum unchanged and halves the leaf range to store.
-# Leaves are int16 when some scale keeps every stored leaf within int16 *and* that worst-case error
-# at or below MAX_ROUNDING_ERROR: 2^-10 log-odds is a 0.1% change of the odds, far below the width
-# of the score segments the regions stage draws (measured: see tests/test_model.py). Otherwise they
-# are int32, at the largest scale for which |bias| + the sum of every tree's largest |leaf| stays
-# within int32, so an int32 accumulator can never overflow. MAX_SCALE_LOG2 caps the scale: a step
-# of 2^-24 log-odds is below the float32 resolution of any score near 1 and finer ones buy nothing.
-MAX_ROUNDING_ERROR = 2.0**-10
-MAX_SCALE_LOG2 = 24
-
-# Training weight of a non-member as a function of its lookup count.
-WEIGHTINGS: dict[str, Callable[[np.ndarray], np.ndarray]] = {
-    "none": np.ones_like,
-    "raw": np.asarray,
-    "sqrt": np.sqrt,
-    "log1p": np.log1p,
-}
-
-
-@dataclass(frozen=True)
-class ModelSettings:
-    """How the model stage trains and chooses. Defaults suit the demo (200k members, ~1M non-members)."""
-
-    seed: int = 0
-    threads: int = field(default=2, metadata={"range": (1, 256)})
-    # Training non-members drawn (uniformly, seeded) when there are more; all members always train.
-    train_nonmembers: int = field(default=300_000, metadata={"range": (1, 10**9)})
-    # Candidate capacities: every (leaves, learning rate) pair is grown and priced. On the demo
-    # corpus (1% target, 480 node tests a key, log1p weights, seed 0) large trees at high rates won:
-    # best totals 85.9k bytes for 31 leaves at rate 0.5, 87.9k for 63 at 0.5, 90.2k for 15 at 0.5,
-    # 91.5k for 31 at 0.25; rate 0.7 gave 87.4k and 1.0 90.2k (another seed moves each by ~4%).
-    # This grid chose 63 leaves at 0.6: 7 trees, 85.9k bytes against 240.2k for a plain Bloom filter.
-    leaves: tuple[int, ...] = (31, 63)
-    learning_rates: tuple[float, ...] = (0.3, 0.6)
-    max_trees: int = field(default=200, metadata={"range": (1, MAX_TREES)})
-    # Query-cost budget: the most node tests per key. The batch evaluator tests every internal node
-    # of every tree (trees x (leaves - 1)); 480 allows e.g. 32 trees of 16 leaves.
-    max_nodes_per_key: int = field(default=480, metadata={"range": (1, 10**7)})
-    checkpoint_every: int = field(default=5, metadata={"range": (1, 100_000)})
-    # Stop growing a candidate after this many checkpoints without a cheaper total.
-    patience: int = field(default=3, metadata={"range": (1, 1000)})
-    # Non-member training weights: WEIGHTINGS[weighting](lookup count), then scaled to sum to the
-    # member count (balanced classes). Measured on the demo corpus (31 leaves, rate 0.5, seeds 0
-    # and 1): log1p 85.9k / 89.9k total bytes, none 87.0k / 91.3k, sqrt 88.4k / 92.5k, raw 95.4k.
-    weighting: str = field(default="log1p", metadata={"choices": tuple(WEIGHTINGS)})
-    # LightGBM's histogram bins per feature (fewer bins train faster), its smallest leaf, and the
-    # share of features each tree may split on (drawn per tree from the seed; on the demo, 0.5
-    # trained 25% faster than 1.0 for the same bytes).
-    max_bin: int = field(default=63, metadata={"range": (2, 255)})
-    min_leaf_rows: int = field(default=20, metadata={"range": (1, 10**9)})
-    feature_fraction: float = field(default=0.5, metadata={"range": (0.01, 1.0)})
-
-    def __post_init__(self) -> None:
-        if self.weighting not in WEIGHTINGS:
-            raise ValueError(f"weighting must be one of {sorted(WEIGHTINGS)}, got {self.weighting!r}")
-        for name in ("threads", "train_nonmembers", "max_trees", "max_nodes_per_key", "checkpoint_every", "patience"):
-            if getattr(self, name) < 1:
-                raise ValueError(f"model setting {name} must be at least 1, got {getattr(self, name)}")
-        if not self.leaves or not all(2 <= n <= MAX_TREE_LEAVES for n in self.leaves):
-            raise ValueError(f"model setting leaves must list values from 2 to {MAX_TREE_LEAVES}, got {self.leaves}")
-        if not self.learning_rates or not all(0 < r <= 1 for r in self.learning_rates):
-            raise ValueError(f"model setting learning_rates must list values in (0, 1], got {self.learning_rates}")
-        if self.max_nodes_per_key < min(self.leaves) - 1:
-            raise ValueError(
-                f"max_nodes_per_key {self.max_nodes_per_key} is below one tree of {min(self.leaves)} leaves "
-                f"({min(self.leaves) - 1} node tests); raise it or lower the leaves"
-            )
 
 
 @dataclass(frozen=True)
@@ -127,146 +48,6 @@ class ModelChoice:
     total_bytes: float
     candidates: list[dict]
     train_seconds: float
-
-
-@dataclass(frozen=True)
-class RawTree:
-    """One LightGBM tree in the Forest's local numbering, before quantisation.
-
-    Internal nodes in preorder (so children follow their parents); child codes >= 0 are internal
-    nodes, < 0 leaf ~code; leaves keep LightGBM's leaf_index, so leaf numbers match pred_leaf.
-    Thresholds and leaf values are LightGBM's doubles.
-    """
-
-    feature: tuple[int, ...]
-    threshold: tuple[float, ...]
-    left: tuple[int, ...]
-    right: tuple[int, ...]
-    leaf_value: tuple[float, ...]
-
-
-# Compilation ----------------------------------------------------------------------------------
-
-
-def float32_at_or_below(threshold: float) -> np.float32:
-    """The largest float32 t32 with t32 <= threshold (a double).
-
-    For every float32 x, x <= t32 exactly when x <= threshold in double arithmetic: if x <= t32 then
-    x <= threshold, and a float32 x <= threshold is at most the largest such float32, t32.
-    """
-    with np.errstate(over="ignore"):
-        nearest = np.float32(threshold)
-    if float(nearest) > threshold:
-        return np.nextafter(nearest, np.float32(-np.inf))
-    return nearest
-
-
-def _check_split(node: dict) -> None:
-    if node["decision_type"] != "<=":
-        raise ValueError(f"only numerical '<=' splits compile; got decision type {node['decision_type']!r} (categorical feature?)")
-    # With missing type None or NaN, LightGBM sends every finite value left exactly when value <=
-    # threshold; with Zero it sends zeros the default way, which a plain comparison cannot express.
-    if node["missing_type"] not in ("None", "NaN"):
-        raise ValueError(f"missing type {node['missing_type']!r} does not compile; train with zero_as_missing=false")
-
-
-def parse_tree(info: dict) -> RawTree:
-    """A RawTree from one `dump_model()["tree_info"]` entry; numerical `<=` splits only."""
-    root = info["tree_structure"]
-    if "leaf_value" in root:
-        return RawTree((), (), (), (), (float(root["leaf_value"]),))
-    feature: list[int] = []
-    threshold: list[float] = []
-    children: list[list[int]] = []  # [left code, right code] per internal node
-    leaf_value = [math.nan] * int(info["num_leaves"])
-    stack: list[tuple[dict, int, int]] = [(root, -1, 0)]  # (node, parent, 0 left / 1 right)
-    while stack:
-        node, parent, side = stack.pop()
-        if "leaf_value" in node:
-            code = ~int(node["leaf_index"])
-            leaf_value[~code] = float(node["leaf_value"])
-        else:
-            _check_split(node)
-            code = len(feature)
-            feature.append(int(node["split_feature"]))
-            threshold.append(float(node["threshold"]))
-            children.append([0, 0])
-            stack.append((node["right_child"], code, 1))
-            stack.append((node["left_child"], code, 0))  # popped first: preorder
-        if parent >= 0:
-            children[parent][side] = code
-    if any(math.isnan(v) for v in leaf_value):
-        raise ValueError(f"tree {info.get('tree_index')}: leaf indices are not 0..{len(leaf_value) - 1}")
-    left, right = (tuple(c[i] for c in children) for i in (0, 1))
-    return RawTree(tuple(feature), tuple(threshold), left, right, tuple(leaf_value))
-
-
-def booster_trees(booster: lgb.Booster, start: int = 0, stop: int | None = None) -> list[RawTree]:
-    """Trees start..stop-1 of a binary-objective booster (through the last when stop is None)."""
-    count = (booster.num_trees() if stop is None else stop) - start
-    if count <= 0:
-        return []
-    dump = booster.dump_model(start_iteration=start, num_iteration=count)
-    if dump["num_tree_per_iteration"] != 1:
-        raise ValueError("only single-output (binary) boosters compile")
-    return [parse_tree(info) for info in dump["tree_info"]]
-
-
-def _quantise(leaf_values: Sequence[np.ndarray], scale: int) -> tuple[list[np.ndarray], int]:
-    """Stored leaf integers (each tree's rounded values minus their integer midpoint) and the bias."""
-    stored, bias = [], 0
-    for values in leaf_values:
-        rounded = np.rint(values * scale).astype(np.int64)
-        midpoint = (int(rounded.max()) + int(rounded.min())) // 2
-        stored.append(rounded - midpoint)
-        bias += midpoint
-    return stored, bias
-
-
-def choose_scale(leaf_values: Sequence[np.ndarray]) -> tuple[int, np.dtype]:
-    """(scale, leaf dtype) for trees with these raw leaf values, by the rule above MAX_ROUNDING_ERROR."""
-    int16_max = int(np.iinfo(np.int16).max)
-    widest_int32 = None
-    for log2 in range(MAX_SCALE_LOG2, -1, -1):
-        scale = 1 << log2
-        stored, bias = _quantise(leaf_values, scale)
-        largest = [int(np.abs(s).max()) for s in stored]
-        if abs(bias) + sum(largest) > INT32_LIMIT:
-            continue
-        widest_int32 = widest_int32 or scale
-        if max(largest, default=0) <= int16_max:
-            if len(leaf_values) * 0.5 / scale <= MAX_ROUNDING_ERROR:
-                return scale, np.dtype("<i2")
-            break  # smaller scales only round more coarsely
-    if widest_int32 is None:
-        raise ValueError("leaf values too large to quantise into int32 scores even at scale 1")
-    return widest_int32, np.dtype("<i4")
-
-
-def compile_trees(trees: Sequence[RawTree], features: int) -> Forest:
-    """The Forest of these trees, for feature vectors of length `features`."""
-    leaf_values = [np.asarray(t.leaf_value, dtype=np.float64) for t in trees]
-    scale, value_dtype = choose_scale(leaf_values)
-    stored, bias = _quantise(leaf_values, scale)
-    splits = [len(t.feature) for t in trees]
-    codes = [c for t in trees for c in (*t.left, *t.right)]
-    child_dtype = narrowest_dtype(min(codes, default=0), max(codes, default=0), CHILD_DTYPES)
-    return Forest(
-        features=features,
-        scale=scale,
-        bias=bias,
-        tree_splits=np.array(splits, dtype=narrowest_dtype(0, max(splits, default=0), TREE_SPLITS_DTYPES)),
-        feature=np.array([f for t in trees for f in t.feature], dtype=np.uint8),
-        threshold=np.array([float32_at_or_below(x) for t in trees for x in t.threshold], dtype=np.float32),
-        left=np.array([c for t in trees for c in t.left], dtype=child_dtype),
-        right=np.array([c for t in trees for c in t.right], dtype=child_dtype),
-        value=np.concatenate(stored).astype(value_dtype) if trees else np.zeros(0, dtype=VALUE_DTYPES[0]),
-    )
-
-
-def compile_booster(booster: lgb.Booster, trees: int | None = None) -> Forest:
-    """The Forest of a binary booster's first `trees` trees (all when None)."""
-    return compile_trees(booster_trees(booster, 0, trees), booster.num_feature())
 
 
 # Measures -------------------------------------------------------------------------------------
@@ -301,14 +82,6 @@ class _Priced:
     forest: Forest
     member_scores: np.ndarray
     val_scores: np.ndarray
-
-
-def training_sample(rows: int, size: int, seed: int) -> np.ndarray:
-    """Indices of the training non-members that train, ascending: all `rows` when there are at
-    most `size`, else `size` of them drawn uniformly without replacement from a seeded generator."""
-    if rows <= size:
-        return np.arange(rows)
-    return np.sort(np.random.default_rng(seed).choice(rows, size, replace=False))
 
 
 def _training_rows(X_members, X_train_non, w_train_non, settings: ModelSettings) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

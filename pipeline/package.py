@@ -1,6 +1,6 @@
 """Package stage: the feature spec, the compiled forest, the regions and their filters in one artifact.
 
-Header (the container's meta map, see `tamis.artifact`):
+Header (the container's meta map, see `tamis.artifact`; FORMAT.md specifies every field):
 
     kind          "membership-filter"
     provenance    whatever the build records (build time, input digests, tool version, ...)
@@ -25,17 +25,10 @@ import numpy as np
 from tamis.artifact import write_artifact
 from tamis.bloom import check_seed
 from tamis.filters import RegionFilter
+from tamis.format import HASHING, HEADER_KIND, filter_section_name
 from tamis.trees import Forest
 
-HEADER_KIND = "membership-filter"
-# Fixed descriptions of the hashing scheme of `tamis.bloom`; a loader refuses any other.
-HASHING = {"function": "xxh3_128", "positions": "enhanced-double-hashing", "bit_order": "lsb0-u64-le"}
 INT64_RANGE = (-(2**63), 2**63 - 1)
-
-
-def filter_section_name(region: int) -> str:
-    """Name of the section holding region's bit array."""
-    return f"filter.{region}"
 
 
 def _boundary_list(boundaries: Sequence[int] | np.ndarray) -> list[int]:

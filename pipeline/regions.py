@@ -20,8 +20,7 @@ with the fewest total bytes (backup filters plus a fixed cost per region).
 
 Boundaries are integer scores: region i holds the scores s with boundaries[i-1] <= s < boundaries[i];
 the first region reaches down to -inf and the last up to +inf, so every key lands in some region,
-whatever its score. `region_of` is that rule; the loader imports it, so this module uses only numpy,
-the standard library and `tamis.bloom`.
+whatever its score. `tamis.query.region_of` is that rule, in the query path a service runs.
 """
 
 from __future__ import annotations
@@ -31,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tamis.bloom import bloom_bits
+from tamis.query import region_of
 
 # The dynamic programme sweeps the (start, end) table in blocks of end columns. A block holds about
 # this many cells (16 MiB per float64 temporary), which keeps memory flat at N = 10,000 segments
@@ -98,15 +98,6 @@ class RegionPlan:
     @property
     def regions(self) -> int:
         return len(self.fprs)
-
-
-def region_of(scores, boundaries) -> np.ndarray:
-    """Region index of each score: i such that boundaries[i-1] <= s < boundaries[i].
-
-    Scores below boundaries[0] go to region 0 and scores at or above boundaries[-1] to the last
-    region; with no boundaries every score is in region 0.
-    """
-    return np.searchsorted(np.asarray(boundaries), np.asarray(scores), side="right")
 
 
 def segment_edges(nonmember_scores, segments: int) -> np.ndarray:

@@ -3,7 +3,7 @@
 A key's score is `bias + sum over trees of the value of the leaf the key reaches`, all integers, so
 every conforming implementation computes the same score bit for bit (invariant 2). The integer
 score divided by `scale` approximates the raw score (log-odds) of the gradient-boosted model it
-was compiled from (`tamis.model`).
+was compiled from (`tamis.booster`).
 
 Traversal rule, at an internal node with feature f and float32 threshold t: go to the right child
 when x[f] > t, otherwise to the left child. For finite inputs this is the usual `x <= t goes left`;
@@ -28,9 +28,9 @@ Evaluators: `score_batch`, `score_columns` and `leaf_indices` walk every tree of
 chunk down one level per numpy step (see `_reached_nodes`), over a breadth-first copy of the trees
 in which the two children of a node are adjacent, so a step is a few array gathers and one
 comparison, with no Python per row; their cost follows the depth of the leaves the rows reach.
-`score_values` and `score_row` walk one row down each tree in plain Python. When numba is installed,
-`score_batch` and `score_columns` run `tamis.compiled.score_rows` instead: each row walks
-each tree over the same breadth-first arrays, the same integer scores.
+`score_values` and `score_row` walk one row down each tree in plain Python. These are the reference
+evaluators; the compiled query path (`tamis.compiled`, chosen in `tamis.query`) walks the same
+breadth-first arrays key by key and must give the same integer scores (tests/test_compiled.py).
 """
 
 from __future__ import annotations
@@ -42,28 +42,19 @@ from functools import cached_property
 
 import numpy as np
 
-from tamis import compiled
-
-SECTION_PREFIX = "forest."
-SECTION_NAMES = ("tree_splits", "feature", "threshold", "left", "right", "value")
-META_KEYS = ("features", "trees", "scale", "bias")
-
-TREE_SPLITS_DTYPES = tuple(np.dtype(t).newbyteorder("<") for t in ("u1", "u2", "u4"))
-FEATURE_DTYPE = np.dtype("<u1")
-THRESHOLD_DTYPE = np.dtype("<f4")
-CHILD_DTYPES = tuple(np.dtype(t).newbyteorder("<") for t in ("i1", "i2", "i4"))
-VALUE_DTYPES = tuple(np.dtype(t).newbyteorder("<") for t in ("i2", "i4"))
-
-# Scores fit a signed 32-bit accumulator: |bias| plus the largest |leaf value| of every tree must
-# stay below 2^31, so an implementation that sums in int32 gets the same answer as our int64 sum.
-INT32_LIMIT = 2**31 - 1
-
-# The most leaves a tree may have: the compiled model never grows more (tamis.model), and the
-# bound keeps a hostile file's tree walks short (depth < 64).
-MAX_TREE_LEAVES = 64
-# The most trees a forest may have: the model stage grows at most this many (its max_trees), and
-# with MAX_TREE_LEAVES it bounds a query's node tests (at most 6.3 million) whatever a file says.
-MAX_TREES = 100_000
+from tamis.format import (
+    CHILD_DTYPES,
+    FEATURE_DTYPE,
+    FOREST_META_KEYS,
+    FOREST_SECTION_NAMES,
+    FOREST_SECTION_PREFIX,
+    INT32_LIMIT,
+    MAX_TREE_LEAVES,
+    MAX_TREES,
+    THRESHOLD_DTYPE,
+    TREE_SPLITS_DTYPES,
+    VALUE_DTYPES,
+)
 
 # Rows walked per numpy pass in the batch evaluators: the walk's arrays (trees x rows node indices)
 # and the chunk's feature columns then stay in the CPU's second-level cache. Measured on one core
@@ -101,10 +92,10 @@ class Forest:
     value: np.ndarray
 
     def __post_init__(self) -> None:
-        for name in SECTION_NAMES:
+        for name in FOREST_SECTION_NAMES:
             array = getattr(self, name)
             if not isinstance(array, np.ndarray):
-                raise ValueError(f"forest section {SECTION_PREFIX}{name} must be a numpy array, got {type(array).__name__}")
+                raise ValueError(f"forest section {FOREST_SECTION_PREFIX}{name} must be a numpy array, got {type(array).__name__}")
             # A private read-only copy: the arrays cannot change after they have been checked.
             frozen = array.copy()
             frozen.flags.writeable = False
@@ -132,7 +123,7 @@ class Forest:
         return self.trees * self.max_splits
 
     def sections(self) -> dict[str, np.ndarray]:
-        return {SECTION_PREFIX + name: getattr(self, name) for name in SECTION_NAMES}
+        return {FOREST_SECTION_PREFIX + name: getattr(self, name) for name in FOREST_SECTION_NAMES}
 
     def meta(self) -> dict:
         return {"features": self.features, "trees": self.trees, "scale": self.scale, "bias": self.bias}
@@ -144,17 +135,17 @@ class Forest:
         Raises ValueError naming the first thing that is wrong: a missing or extra key, a dtype,
         a length, a child index out of range or out of order, a feature index >= d.
         """
-        if not isinstance(meta, Mapping) or set(meta) != set(META_KEYS):
+        if not isinstance(meta, Mapping) or set(meta) != set(FOREST_META_KEYS):
             got = sorted(meta) if isinstance(meta, Mapping) else type(meta).__name__
-            raise ValueError(f"forest meta must have exactly the keys {list(META_KEYS)}, got {got}")
-        expected = {SECTION_PREFIX + name for name in SECTION_NAMES}
-        present = {name for name in sections if name.startswith(SECTION_PREFIX)}
+            raise ValueError(f"forest meta must have exactly the keys {list(FOREST_META_KEYS)}, got {got}")
+        expected = {FOREST_SECTION_PREFIX + name for name in FOREST_SECTION_NAMES}
+        present = {name for name in sections if name.startswith(FOREST_SECTION_PREFIX)}
         if present != expected:
             raise ValueError(
                 f"forest sections must be {sorted(expected)}; missing {sorted(expected - present)}, "
                 f"unexpected {sorted(present - expected)}"
             )
-        arrays = {name: sections[SECTION_PREFIX + name] for name in SECTION_NAMES}
+        arrays = {name: sections[FOREST_SECTION_PREFIX + name] for name in FOREST_SECTION_NAMES}
         forest = cls(features=meta["features"], scale=meta["scale"], bias=meta["bias"], **arrays)
         if type(meta["trees"]) is not int or forest.trees != meta["trees"]:
             raise ValueError(f"forest meta says {meta['trees']} trees but forest.tree_splits holds {forest.trees}")
@@ -174,10 +165,10 @@ class Forest:
 def _check_dtype(name: str, array: np.ndarray, allowed: tuple[np.dtype, ...]) -> None:
     if array.dtype not in allowed:
         raise ValueError(
-            f"forest section {SECTION_PREFIX}{name} has dtype {array.dtype.str}; expected one of {[d.str for d in allowed]}"
+            f"forest section {FOREST_SECTION_PREFIX}{name} has dtype {array.dtype.str}; expected one of {[d.str for d in allowed]}"
         )
     if array.ndim != 1:
-        raise ValueError(f"forest section {SECTION_PREFIX}{name} must be 1-D, got shape {array.shape}")
+        raise ValueError(f"forest section {FOREST_SECTION_PREFIX}{name} must be 1-D, got shape {array.shape}")
 
 
 def _check_forest(forest: Forest) -> None:
@@ -206,12 +197,12 @@ def _check_forest(forest: Forest) -> None:
     for name in ("feature", "threshold", "left", "right"):
         if len(getattr(forest, name)) != total_splits:
             raise ValueError(
-                f"forest section {SECTION_PREFIX}{name} has {len(getattr(forest, name))} entries; "
+                f"forest section {FOREST_SECTION_PREFIX}{name} has {len(getattr(forest, name))} entries; "
                 f"tree_splits sums to {total_splits}"
             )
     if len(forest.value) != total_splits + forest.trees:
         raise ValueError(
-            f"forest section {SECTION_PREFIX}value has {len(forest.value)} entries; "
+            f"forest section {FOREST_SECTION_PREFIX}value has {len(forest.value)} entries; "
             f"{forest.trees} trees with {total_splits} splits have {total_splits + forest.trees} leaves"
         )
     if total_splits and int(forest.feature.max()) >= forest.features:
@@ -432,11 +423,6 @@ def score_columns(forest: Forest, columns: np.ndarray) -> np.ndarray:
     scores = np.full(columns.shape[1], forest.bias, dtype=np.int64)
     if forest.trees == 0:
         return scores
-    if compiled.in_use():  # the kernel reads rows, so each chunk is transposed in cache first
-        for start in range(0, columns.shape[1], CHUNK_ROWS):
-            rows = np.ascontiguousarray(columns[:, start : start + CHUNK_ROWS].T)
-            compiled.score_rows(rows, *forest._levels.kernel_arrays, forest.bias, scores[start : start + len(rows)])
-        return scores
     value = forest._levels.value
     for start, reached in _leaves_by_chunk(forest, columns):
         scores[start : start + reached.shape[1]] += value.take(reached).sum(axis=0)
@@ -446,10 +432,6 @@ def score_columns(forest: Forest, columns: np.ndarray) -> np.ndarray:
 def score_batch(forest: Forest, X: np.ndarray) -> np.ndarray:
     """Integer scores (int64, shape (n,)) of the rows of a float32 matrix X of shape (n, d)."""
     _check_matrix(forest, X)
-    if compiled.in_use() and forest.trees:
-        scores = np.empty(len(X), dtype=np.int64)  # the kernel writes bias + leaf sum into every row
-        compiled.score_rows(np.ascontiguousarray(X), *forest._levels.kernel_arrays, forest.bias, scores)
-        return scores
     scores = np.empty(len(X), dtype=np.int64)
     for start in range(0, len(X), CHUNK_ROWS):
         block = X[start : start + CHUNK_ROWS]

@@ -15,14 +15,15 @@ from pathlib import Path
 
 import numpy as np
 
-from tamis.config import BuildConfig, CorpusSettings, FilterSettings, TargetSettings
+from tamis.config import BuildConfig, CorpusSettings, FilterSettings, ModelSettings, TargetSettings
 from tamis.corpus import load_corpus
 from tamis.features import default_feature_spec, featurize
 from tamis.filters import build_filters
-from tamis.model import ModelSettings, fit_model
+from tamis.model import fit_model
 from tamis.package import package_artifact
 from tamis.provenance import build_provenance
-from tamis.regions import RegionSettings, plan_regions, region_of
+from tamis.query import region_of
+from tamis.regions import RegionSettings, plan_regions
 from tamis.trees import score_batch
 
 MEMBERS, NON_MEMBERS, CORPUS_SEED = 2_000, 20_000, 20261201

@@ -38,6 +38,7 @@ from golden_build import HASH_SEED, build_golden, write_fixed_corpus  # noqa: E4
 from tamis.bloom import hash_keys, probe_positions  # noqa: E402
 from tamis.features import featurize  # noqa: E402
 from tamis.loader import open_filter  # noqa: E402
+from tamis.query import region_of  # noqa: E402
 from tamis.trees import score_batch  # noqa: E402
 
 # 2026-12-02T00:00:00Z, the build time the reference artifact records.
@@ -66,7 +67,6 @@ def write_reference_artifact(path: Path) -> None:
     """The golden build's forest and members, regrouped into four regions of every mode."""
     from tamis.filters import build_filters
     from tamis.package import package_artifact
-    from tamis.regions import region_of
 
     with tempfile.TemporaryDirectory() as work:
         golden = open_filter(build_golden(Path(work)))
@@ -122,14 +122,11 @@ def _is_utf8(key: bytes) -> bool:
 
 def make_vectors(path: Path) -> dict:
     """Every key of `vector_keys` through each step of the reference implementation."""
-    from tamis import compiled
-
-    compiled.ENABLED = False  # the numpy path is the reference
-    loaded = open_filter(path)
+    loaded = open_filter(path, answer_path="numpy")  # the reference
     keys = vector_keys()
     features = featurize(keys, loaded.feature_spec)
     scores = score_batch(loaded.forest, features)
-    regions = np.searchsorted(np.array(loaded.boundaries, dtype=np.int64), scores, side="right")
+    regions = region_of(scores, loaded.boundaries)
     answers = loaded.contains_many(keys)
     return {
         "artifact": path.name,

@@ -17,12 +17,14 @@ from pathlib import Path
 import lightgbm as lgb
 import numpy as np
 
-from tamis.config import BuildConfig, CorpusSettings, GateSettings, StoreSettings, TargetSettings
+from tamis.config import BuildConfig, CorpusSettings, GateSettings, ModelSettings, StoreSettings, TargetSettings
 from tamis.features import default_feature_spec, featurize
 from tamis.filters import build_filters
-from tamis.model import ModelSettings, compile_booster, fit_model
+from tamis.booster import compile_booster
+from tamis.model import fit_model
 from tamis.package import package_artifact
-from tamis.regions import RegionSettings, plan_regions, region_of
+from tamis.query import region_of
+from tamis.regions import RegionSettings, plan_regions
 from tamis.trees import score_batch
 
 # A model small enough that training takes well under a second on the small corpora of the tests:
@@ -157,7 +159,7 @@ PROVENANCE = {"built_at": "2026-12-01T00:00:00Z", "build_id": "property"}
 def train_forest(X_members, X_train, train_counts, X_validation, validation_counts, target, how):
     """The model: chosen by artifact bytes through tamis.model.fit_model ("chosen", which on
     corpora this small mostly picks no tree at all), or a LightGBM booster of `how` trees grown
-    as is and compiled by tamis.model.compile_booster."""
+    as is and compiled by tamis.booster.compile_booster."""
     if how == "chosen":
         def filter_bytes(member_scores, val_scores, val_weights) -> float:
             return plan_regions(member_scores, val_scores, val_weights, target, TINY_REGIONS).estimated_total_bits / 8

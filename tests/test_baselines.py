@@ -16,7 +16,7 @@ import pytest
 from tamis.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
 from tamis.bloom import bloom_bits, bloom_fpr, hash_keys
 from tamis.filters import build_filters
-from tamis.regions import region_of
+from tamis.query import region_of
 
 
 def normal_scores(rng, size: int, mean: float, scale: float = 100.0) -> np.ndarray:

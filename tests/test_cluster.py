@@ -35,17 +35,18 @@ from tamis.errors import BadInput  # noqa: E402
 from tamis.features import default_feature_spec, featurize  # noqa: E402
 from tamis.filters import build_filters  # noqa: E402
 from tamis.loader import open_filter  # noqa: E402
+from tamis.booster import compile_booster  # noqa: E402
+from tamis.config import ModelSettings  # noqa: E402
 from tamis.model import (  # noqa: E402
     FOREST_OVERHEAD_BYTES,
-    ModelSettings,
-    compile_booster,
     fit_model,
     fit_model_on_cluster,
     scatter_rows,
     train_on_cluster,
 )
 from tamis.package import package_artifact  # noqa: E402
-from tamis.regions import RegionSettings, plan_regions, region_of  # noqa: E402
+from tamis.query import region_of  # noqa: E402
+from tamis.regions import RegionSettings, plan_regions  # noqa: E402
 from tamis.trees import Forest, score_batch  # noqa: E402
 from tamis.verify import check_filter, path_sample  # noqa: E402
 

@@ -1,5 +1,6 @@
-"""The compiled kernels (numba) against the plain numpy path: bit-identical features, identical
-scores, identical Bloom answers and identical loader answers, on keys of every shape.
+"""The compiled query path (numba) against the numpy reference: bit-identical features, identical
+scores, regions and Bloom answers, and identical loader answers on the batch and single-key calls,
+on keys of every shape.
 
 The numpy path is the reference (tests/test_features.py, tests/test_trees.py and tests/test_bloom.py
 check it against hand counts, LightGBM itself and the published Bloom formulas); here each kernel
@@ -22,10 +23,11 @@ pytest.importorskip("numba")
 
 from tamis import compiled, demo  # noqa: E402
 from tamis.bloom import BloomFilter, hash_keys  # noqa: E402
-from tamis.features import default_feature_spec, featurize, featurize_columns, pack_keys  # noqa: E402
+from tamis.booster import compile_booster  # noqa: E402
+from tamis.features import default_feature_spec, feature_layout, featurize, featurize_columns, pack_keys  # noqa: E402
 from tamis.loader import open_filter  # noqa: E402
-from tamis.model import compile_booster  # noqa: E402
-from tamis.trees import score_batch, score_columns  # noqa: E402
+from tamis.query import CompiledPath, Constant, NumpyPath, QueryTables, pack_batch  # noqa: E402
+from tamis.trees import Forest, score_batch  # noqa: E402
 
 SPECS = [default_feature_spec(),
          {**default_feature_spec(), "bigram_buckets": 1, "trigram_buckets": 2, "affix_buckets": 1},
@@ -38,14 +40,16 @@ def _needs_the_kernels():
         pytest.skip(f"the compiled path is disabled ({compiled.NUMPY_ONLY_VARIABLE} is set)")
 
 
-def on_both_paths(run):
-    """(numpy result, compiled result) of run()."""
-    compiled.ENABLED = False
-    try:
-        reference = run()
-    finally:
-        compiled.ENABLED = True
-    return reference, run()
+def no_trees(features: int) -> Forest:
+    empty = np.zeros(0, dtype=np.int8)
+    return Forest(features=features, scale=1, bias=0, tree_splits=np.zeros(0, dtype=np.uint8),
+                  feature=np.zeros(0, dtype=np.uint8), threshold=np.zeros(0, dtype=np.float32),
+                  left=empty, right=empty, value=np.zeros(1, dtype=np.int16)[:0])
+
+
+def tables(spec, forest=None, boundaries=(), regions=(Constant(True),), seed=0) -> QueryTables:
+    layout = feature_layout(spec)
+    return QueryTables(layout, forest or no_trees(layout.count), tuple(boundaries), tuple(regions), seed)
 
 
 def demo_handles(count: int) -> list[bytes]:
@@ -64,8 +68,10 @@ def awkward_keys() -> list[bytes]:
 
 def assert_same_features(keys: list[bytes], spec: dict) -> None:
     data, offsets = pack_keys(keys)
-    numpy_columns, compiled_columns = on_both_paths(lambda: featurize_columns(data, offsets, spec))
-    assert np.array_equal(numpy_columns.view(np.uint32), compiled_columns.view(np.uint32))
+    reference = featurize_columns(data, offsets, spec)
+    kernel = np.empty_like(reference)
+    compiled.featurize_into(data, offsets, CompiledPath(tables(spec)).blob, kernel)
+    assert np.array_equal(reference.view(np.uint32), kernel.view(np.uint32))
 
 
 @pytest.mark.parametrize("spec", SPECS)
@@ -110,11 +116,22 @@ def test_scores_are_identical(forest_and_rows):
         edges[3 * i : 3 * i + 3, f] = [np.nextafter(t, -np.inf), t, np.nextafter(t, np.inf)]
     edges[-1, :] = np.nan
     rows = np.vstack([X, edges])
-    numpy_scores, compiled_scores = on_both_paths(lambda: score_batch(forest, rows))
-    assert np.array_equal(numpy_scores, compiled_scores)
-    columns = np.ascontiguousarray(rows.T)
-    assert np.array_equal(*on_both_paths(lambda: score_columns(forest, columns)))
-    assert np.array_equal(*on_both_paths(lambda: score_columns(forest, columns[:, :0])))
+    blob = CompiledPath(tables(default_feature_spec(), forest)).blob
+    for block in (rows, rows[:0]):
+        scores = np.empty(len(block), dtype=np.int64)
+        compiled.score_rows(block, blob, scores)
+        assert np.array_equal(scores, score_batch(forest, block))
+
+
+def test_regions_are_identical(forest_and_rows):
+    forest, X = forest_and_rows
+    keys = demo_handles(3000) + awkward_keys()
+    packed = pack_batch(keys)
+    scores = np.sort(score_batch(forest, featurize(keys, default_feature_spec())))
+    # boundaries at key scores (ties fall on the upper side), between them, and beyond them all
+    for boundaries in ([], [int(scores[len(scores) // 2])], scores[:: len(scores) // 7].tolist(), [scores[-1] + 1]):
+        both = tables(default_feature_spec(), forest, boundaries, [Constant(True)] * (len(boundaries) + 1))
+        assert np.array_equal(NumpyPath(both).regions(packed), CompiledPath(both).regions(packed))
 
 
 @pytest.mark.parametrize("bits, probes", [(1, 1), (64, 3), (1000, 7), (1_000_003, 12)])
@@ -125,14 +142,18 @@ def test_bloom_answers_are_identical(bits, probes):
     bloom.insert(members)
     queries = members + [bytes(rng.integers(0, 256, 9).astype(np.uint8)) for _ in range(3000)]
     hashes = hash_keys(queries, 77)
-    numpy_answers, compiled_answers = on_both_paths(lambda: bloom.query_hashes(hashes))
-    assert np.array_equal(numpy_answers, compiled_answers) and compiled_answers[: len(members)].all()
+    # a "no" region first, so the Bloom filter's words do not start the word table
+    blob = CompiledPath(tables(default_feature_spec(), regions=[Constant(False), bloom], seed=77)).blob
+    answers = np.empty(len(queries), dtype=bool)
+    compiled.answer_regions(np.ones(len(queries), dtype=np.int64), hashes.low, hashes.high, blob, answers)
+    assert np.array_equal(answers, bloom.query_hashes(hashes)) and answers[: len(members)].all()
 
 
 def test_loader_answers_are_identical(forest_and_rows, tmp_path):
     from tamis.filters import build_filters
     from tamis.package import package_artifact
-    from tamis.regions import RegionSettings, plan_regions, region_of
+    from tamis.query import region_of
+    from tamis.regions import RegionSettings, plan_regions
 
     forest, _ = forest_and_rows
     spec = default_feature_spec()
@@ -149,9 +170,10 @@ def test_loader_answers_are_identical(forest_and_rows, tmp_path):
     loaded = open_filter(path)
     queries = members + others + awkward_keys() + [k.decode("latin-1") for k in awkward_keys()]
     rng.shuffle(queries)
-    numpy_answers, compiled_answers = on_both_paths(lambda: loaded.contains_many(queries))
-    assert np.array_equal(numpy_answers, compiled_answers)
-    assert loaded.contains_many(members).all()  # zero false negatives on the compiled path
+    reference, kernels = loaded.using("numpy"), loaded.using("compiled")
+    assert np.array_equal(reference.contains_many(queries), kernels.contains_many(queries))
+    assert [reference.contains(k) for k in queries] == [kernels.contains(k) for k in queries]
+    assert kernels.contains_many(members).all() and all(map(kernels.contains, members))  # no false negatives
 
 
 def test_the_environment_variable_forces_the_numpy_path():
@@ -162,8 +184,7 @@ def test_the_environment_variable_forces_the_numpy_path():
         assert done.stdout.strip() == expected
 
 
-def test_the_numpy_answer_path_runs_no_kernel_and_leaves_other_threads_compiled(monkeypatch):
-    import threading
+def test_the_numpy_answer_path_runs_no_kernel(monkeypatch):
     from pathlib import Path
 
     artifact = Path(__file__).parent / "data" / "format-1.0.tamis"
@@ -174,15 +195,10 @@ def test_the_numpy_answer_path_runs_no_kernel_and_leaves_other_threads_compiled(
     def no_kernel(*args):
         raise AssertionError("a compiled kernel ran on the numpy path")
 
-    for name in ("featurize_into", "score_rows", "score_packed", "bloom_query"):
+    for name in ("featurize_into", "score_rows", "regions_of_packed", "answer_regions", "contains_one"):
         monkeypatch.setattr(compiled, name, no_kernel)
-    assert loaded.answers_through("numpy", keys).tolist() == expected.tolist()
-    with pytest.raises(AssertionError, match="compiled kernel ran"):
-        loaded.answers_through("compiled", keys)
-    seen_elsewhere = []
-    with compiled.numpy_reference():
-        worker = threading.Thread(target=lambda: seen_elsewhere.append(compiled.in_use()))
-        worker.start()
-        worker.join()
-        assert not compiled.in_use()
-    assert seen_elsewhere == [True] and compiled.in_use()
+    for path in ("numpy", "numpy-single"):
+        assert loaded.answers_through(path, keys).tolist() == expected.tolist()
+    for path in ("compiled", "compiled-single"):
+        with pytest.raises(AssertionError, match="compiled kernel ran"):
+            loaded.answers_through(path, keys)

@@ -23,9 +23,9 @@ from tamis.corpus import (
     read_source,
     sample_keys,
     split_buckets,
+    training_sample,
 )
 from tamis.errors import BadInput
-from tamis.model import training_sample
 
 SETTINGS = CorpusSettings()
 

@@ -14,10 +14,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from tamis import compiled
 from tamis.bloom import hash_keys, probe_positions
 from tamis.features import featurize
 from tamis.loader import open_filter
+from tamis.query import ANSWER_PATHS, available_paths, region_of
 from tamis.trees import score_batch
 
 DATA = Path(__file__).resolve().parent / "data"
@@ -38,15 +38,16 @@ def test_the_vectors_cover_every_region_mode_and_both_answers(reference):
     assert any(v["key_text"] is None for v in VECTORS) and any(not v["key_text"].isascii() for v in VECTORS if v["key_text"])
 
 
-@pytest.mark.parametrize("numpy_only", [True, False])
-def test_the_reference_artifact_answers_as_recorded_on_every_path(reference, numpy_only, monkeypatch):
-    if not numpy_only and not compiled.ENABLED:
+@pytest.mark.parametrize("answer_path", ANSWER_PATHS)
+def test_the_reference_artifact_answers_as_recorded_on_every_path(reference, answer_path):
+    if answer_path not in available_paths():
         pytest.skip("numba is not installed or is disabled")
-    monkeypatch.setattr(compiled, "ENABLED", compiled.ENABLED and not numpy_only)
-    assert reference.contains_many(KEYS).tolist() == ANSWERS
-    assert [reference.contains(key) for key in KEYS] == ANSWERS
+    on_path = reference.using(answer_path)
+    assert on_path.contains_many(KEYS).tolist() == ANSWERS
+    assert [on_path.contains(key) for key in KEYS] == ANSWERS
     texts = [v["key_text"] for v in VECTORS if v["key_text"] is not None]
-    assert reference.contains_many(texts).tolist() == [v["answer"] for v in VECTORS if v["key_text"] is not None]
+    assert on_path.contains_many(texts).tolist() == [v["answer"] for v in VECTORS if v["key_text"] is not None]
+    assert [on_path.contains(text) for text in texts] == [v["answer"] for v in VECTORS if v["key_text"] is not None]
 
 
 def test_each_step_matches_the_vectors(reference):
@@ -55,7 +56,7 @@ def test_each_step_matches_the_vectors(reference):
     assert np.array_equal(features.view(np.uint32), expected)
     scores = score_batch(reference.forest, features)
     assert scores.tolist() == [v["score"] for v in VECTORS]
-    regions = np.searchsorted(np.array(reference.boundaries, dtype=np.int64), scores, side="right")
+    regions = region_of(scores, reference.boundaries)
     assert regions.tolist() == [v["region"] for v in VECTORS]
     hashes = hash_keys(KEYS, reference.hash_seed)
     assert hashes.low.tolist() == [v["hash_low"] for v in VECTORS]

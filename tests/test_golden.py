@@ -2,7 +2,7 @@
 
 If this test fails, the bytes of an artifact changed for the same inputs: the container layout,
 the header, the feature values, the trees LightGBM grows, the region plan or the filters. When
-the change is deliberate, bump FORMAT_MINOR or FORMAT_MAJOR (pipeline/artifact.py) or
+the change is deliberate, bump FORMAT_MINOR or FORMAT_MAJOR (pipeline/format.py) or
 FEATURES_VERSION as the change requires, and record the new digest here.
 """
 

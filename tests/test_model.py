@@ -18,18 +18,10 @@ from scipy import stats
 from test_trees import assert_matches_lightgbm
 
 from tamis.bloom import bloom_bits
-from tamis.model import (
-    INT32_LIMIT,
-    MAX_ROUNDING_ERROR,
-    ModelSettings,
-    choose_scale,
-    compile_booster,
-    compile_trees,
-    fit_model,
-    float32_at_or_below,
-    parse_tree,
-    weighted_auc,
-)
+from tamis.booster import MAX_ROUNDING_ERROR, choose_scale, compile_booster, compile_trees, float32_at_or_below, parse_tree
+from tamis.config import ModelSettings
+from tamis.format import INT32_LIMIT
+from tamis.model import fit_model, weighted_auc
 from tamis.trees import score_batch
 
 TARGET_FPR = 0.01

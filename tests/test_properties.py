@@ -17,7 +17,7 @@ from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
 from tamis.corpus import KeySet
 from tamis.features import default_feature_spec, featurize
 from tamis.loader import open_filter
-from tamis.regions import region_of
+from tamis.query import available_paths, region_of
 from tamis.trees import score_batch
 from tamis.verify import clopper_pearson_upper, measure_fpr
 from tamis_testing import HASH_SEED, build_artifact
@@ -74,9 +74,12 @@ PROPERTY_SETTINGS = settings(max_examples=40, deadline=None,
 
 def assert_every_member_answers_yes(path, members, regions: int) -> None:
     loaded = open_filter(path)
-    event(f"{regions} regions, {'a model' if loaded.forest.trees else 'no model'}, modes {sorted({r.mode for r in loaded.regions})}")
-    assert loaded.contains_many(members).all(), f"a member answered no ({regions} regions)"
-    assert all(loaded.contains(key) for key in members), "the single-key path disagrees"
+    modes = sorted({region["mode"] for region in loaded.info["regions"]})
+    event(f"{regions} regions, {'a model' if loaded.forest.trees else 'no model'}, modes {modes}")
+    for answer_path in available_paths():
+        on_path = loaded.using(answer_path)
+        assert on_path.contains_many(members).all(), f"a member answered no ({regions} regions, {answer_path})"
+        assert all(on_path.contains(key) for key in members), f"a member answered no to contains ({answer_path})"
 
 
 @PROPERTY_SETTINGS

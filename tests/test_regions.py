@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
+from tamis.query import region_of
 from tamis.regions import (
     RegionPlan,
     RegionSettings,
@@ -24,7 +25,6 @@ from tamis.regions import (
     best_partitions,
     kl_divergence_bits,
     plan_regions,
-    region_of,
     segment_edges,
     segment_shares,
 )

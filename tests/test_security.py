@@ -29,9 +29,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from tamis import publish
-from tamis.artifact import MAGIC, PREAMBLE, ArtifactError, read_artifact, write_artifact
+from tamis.artifact import ArtifactError, read_artifact, write_artifact
 from tamis.cli import main
 from tamis.config import config_from_dict
+from tamis.format import MAGIC, PREAMBLE
 from tamis.loader import FilterLoadError, open_filter
 from tamis_testing import build_artifact
 

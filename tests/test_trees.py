@@ -17,7 +17,7 @@ import pytest
 from scipy import stats
 
 from tamis import trees as trees_module
-from tamis.model import compile_booster
+from tamis.booster import compile_booster
 from tamis.trees import Forest, leaf_indices, score_batch, score_row
 
 LGB_PARAMS = {"objective": "binary", "verbose": -1, "num_threads": 2, "seed": 3, "deterministic": True,
