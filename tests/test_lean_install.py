@@ -16,17 +16,24 @@ from pathlib import Path
 
 from tamis.cli import BUILD_INSTALL, BUILD_STACK
 
-# The loader's import budget without numba (TAMIS_NUMPY_ONLY=1), numpy's own import included.
+# The loader's import budget without numba (TAMIS_NUMPY_ONLY=1), numpy's own import included, in
+# CPU seconds (the wall clock also counts the time other processes hold the CPU), best of
+# IMPORT_RUNS fresh processes.
 IMPORT_BUDGET_SECONDS = 0.15
-# CPU seconds of the import, best of this many fresh processes: on a shared machine the wall clock
-# also counts the time other processes hold the CPU, and one run may be unlucky.
 IMPORT_RUNS = 5
+# The budget holds where numpy, xxhash and msgpack import in this much CPU time (measured here,
+# 2026-12-02, at a load average of about 3: 0.098 s). A machine busy enough to slow them down
+# scales the budget in proportion, so a heavy import of our own (lightgbm costs 1.4 s, polars
+# 0.3 s, reading distribution metadata 0.04 s) still fails the test but a crowded CI runner does not.
+DEPENDENCIES_REFERENCE_SECONDS = 0.10
 
 _MEASURE = """
 import time
-cpu, wall = time.process_time(), time.perf_counter()
+cpu = time.process_time()
+import numpy, xxhash, msgpack
+dependencies = time.process_time() - cpu
 import tamis.loader
-print(time.process_time() - cpu, time.perf_counter() - wall)
+print(dependencies, time.process_time() - cpu)
 """
 
 _REFUSE = """
@@ -50,8 +57,10 @@ def numpy_only_env() -> dict:
 def test_importing_the_loader_takes_at_most_the_budget_without_numba():
     runs = [subprocess.run([sys.executable, "-c", _MEASURE], env=numpy_only_env(), capture_output=True, text=True,
                            check=True).stdout.split() for _ in range(IMPORT_RUNS)]
-    best_cpu = min(float(cpu) for cpu, _ in runs)
-    assert best_cpu <= IMPORT_BUDGET_SECONDS, f"import tamis.loader took {best_cpu:.3f} s of CPU at best of {runs}"
+    dependencies = min(float(d) for d, _ in runs)
+    best = min(float(total) for _, total in runs)
+    budget = IMPORT_BUDGET_SECONDS * max(1.0, dependencies / DEPENDENCIES_REFERENCE_SECONDS)
+    assert best <= budget, f"import tamis.loader took {best:.3f} s of CPU at best ({dependencies:.3f} s its dependencies)"
 
 
 def test_the_loader_imports_no_build_stage_and_no_build_library():
