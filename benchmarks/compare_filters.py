@@ -77,6 +77,7 @@ from tamis.flows.build import (
     read_corpus,
     run_in_process,
     train_model,
+    training_keys,
     verify_package,
     write_package,
 )
@@ -84,7 +85,7 @@ from tamis import verify
 from tamis.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
 from tamis.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys, word_count
 from tamis.config import BuildConfig, load_config, with_overrides
-from tamis.corpus import Corpus, KeySet, sample_keys
+from tamis.corpus import Corpus, KeySet
 from tamis.demo import write_demo_corpus
 from tamis.errors import BadInput
 from tamis.features import default_feature_spec, featurize
@@ -146,8 +147,13 @@ class Prepared:
     spec: dict
     train: KeySet
     features: dict
-    heldout_features: np.ndarray
-    heldout_hashes: KeyHashes
+    probe_features: np.ndarray
+    probe_hashes: KeyHashes
+
+    @property
+    def heavy(self) -> int:
+        """The probe keys are the heavy keys, then the held-out light keys."""
+        return len(self.corpus.heavy.keys)
 
 
 def prepare(name: str, folder: Path, demo_size: tuple[int, int], model: dict) -> Prepared:
@@ -156,15 +162,17 @@ def prepare(name: str, folder: Path, demo_size: tuple[int, int], model: dict) ->
     corpus = read_corpus.fn(config)
     spec = default_feature_spec()
     started = time.perf_counter()
-    train = sample_keys(corpus.train, config.model.train_nonmembers, config.model.seed)
+    train = training_keys(corpus, config)
     features = extract_features(run_in_process, corpus, train, spec, config)
-    heldout_features = featurize(corpus.heldout.keys, spec)
-    heldout_hashes = hash_keys(corpus.heldout.keys, config.filters.hash_seed)
+    probes = corpus.heavy.keys + corpus.heldout.keys
+    probe_features = featurize(probes, spec)
+    probe_hashes = hash_keys(probes, config.filters.hash_seed)
     log(
-        f"{name}: {len(corpus.members):,} members, {len(corpus.train.keys):,} / {len(corpus.validation.keys):,} / "
-        f"{len(corpus.heldout.keys):,} train / validation / held-out non-members; features in {time.perf_counter() - started:.0f} s"
+        f"{name}: {len(corpus.members):,} members, {len(corpus.heavy.keys):,} heavy (tau {corpus.tau}) and "
+        f"{len(corpus.train.keys):,} / {len(corpus.validation.keys):,} / {len(corpus.heldout.keys):,} train / validation / "
+        f"held-out light non-members; features in {time.perf_counter() - started:.0f} s"
     )
-    return Prepared(name, corpus, config, spec, train, features, heldout_features, heldout_hashes)
+    return Prepared(name, corpus, config, spec, train, features, probe_features, probe_hashes)
 
 
 # Filters -----------------------------------------------------------------------------------------
@@ -186,8 +194,11 @@ class Measured:
 
 
 def measured(label: str, size: int, answers: np.ndarray, prepared: Prepared) -> Measured:
-    corpus = prepared.corpus
-    measurement = verify.measure_fpr(answers, corpus.heldout, corpus.has_counts, prepared.config.gate.confidence)
+    """A filter's rate from its answers to the probe keys: by lookups as verify measures it (heavy
+    keys exact, the tail estimated from the held-out light keys), and by held-out keys."""
+    corpus, heavy = prepared.corpus, prepared.heavy
+    strata = verify.strata_of(corpus)
+    measurement = verify.measure(answers[:heavy], answers[heavy:], strata, prepared.config.gate.confidence)
     by_keys = measurement.false_positive_keys / measurement.keys
     return Measured(label, size, measurement.fpr if corpus.has_counts else None, by_keys)
 
@@ -198,7 +209,7 @@ def plain_bloom(prepared: Prepared, fpr: float) -> Measured:
     bits = bloom_bits(members, fpr)
     bloom = BloomFilter.empty(bits, bloom_hashes(bits, members), prepared.config.filters.hash_seed)
     bloom.insert(prepared.corpus.members)
-    return measured("plain Bloom", bloom.nbytes, bloom.query_hashes(prepared.heldout_hashes), prepared)
+    return measured("plain Bloom", bloom.nbytes, bloom.query_hashes(prepared.probe_hashes), prepared)
 
 
 def plain_bloom_bytes(members: int, fpr: float) -> int:
@@ -206,51 +217,52 @@ def plain_bloom_bytes(members: int, fpr: float) -> int:
     return 8 * word_count(bloom_bits(members, fpr))
 
 
-def heldout_answers(heldout_scores: np.ndarray, prepared: Prepared, boundaries, filters) -> np.ndarray:
-    """The held-out keys' answers from their scores, the boundaries and the region filters: the
+def probe_answers(probe_scores: np.ndarray, prepared: Prepared, boundaries, filters) -> np.ndarray:
+    """The probe keys' answers from their scores, the boundaries and the region filters: the
     loader's own rule (`MembershipFilter.contains_many`), on scores and hashes computed once."""
-    regions = region_of(heldout_scores, boundaries)
-    answers = np.zeros(len(heldout_scores), dtype=bool)
+    regions = region_of(probe_scores, boundaries)
+    answers = np.zeros(len(probe_scores), dtype=bool)
     for index, region in enumerate(filters):
         mask = regions == index
         if region.mode == "yes":
             answers[mask] = True
         elif region.mode == "bloom" and mask.any():
             bloom = region.bloom(prepared.config.filters.hash_seed)
-            answers[mask] = bloom.query_hashes(prepared.heldout_hashes.select(mask))
+            answers[mask] = bloom.query_hashes(prepared.probe_hashes.select(mask))
     return answers
 
 
 @dataclass(frozen=True)
 class Built:
-    """An artifact written to a file, with its held-out answers (computed from scores)."""
+    """An artifact written to a file, with its answers to the probe keys (computed from scores)."""
 
     path: Path
     filters: list
     answers: np.ndarray
 
 
-def build_artifact(prepared: Prepared, path: Path, forest, plan, member_scores, heldout_scores) -> Built:
+def build_artifact(prepared: Prepared, path: Path, forest, plan, member_scores, probe_scores) -> Built:
     """The filters of a plan (anything with `boundaries` and `fprs`), packaged with the forest."""
     seed = prepared.config.filters.hash_seed
     filters = fill_filters(run_in_process, prepared.corpus, member_scores, plan, prepared.config)
     write_package.fn(path, prepared.spec, forest, plan, filters, seed, {"benchmark": path.stem}, None)
-    return Built(path, filters, heldout_answers(heldout_scores, prepared, plan.boundaries, filters))
+    return Built(path, filters, probe_answers(probe_scores, prepared, plan.boundaries, filters))
 
 
 def through_loader(prepared: Prepared, built: Built, label: str) -> Measured:
-    """Verify an artifact as the verify stage does (every member, every held-out key through the
-    loader) and check that the answers computed from scores agree with the loader's."""
+    """Verify an artifact as the verify stage does (every member, heavy key and held-out key through
+    the loader) and check that the answers computed from scores agree with the loader's."""
     checked = verify_package(run_in_process, built.path, prepared.corpus, prepared.config)
     if checked.false_negatives:
         raise AssertionError(f"{built.path}: {checked.false_negatives} members answered no (invariant 1 broken)")
     result = measured(label, built.path.stat().st_size, built.answers, prepared)
-    if checked.heldout.false_positive_keys != int(built.answers.sum()):
+    found = checked.heldout.false_positive_keys + checked.heldout.heavy_false_positive_keys
+    if found != int(built.answers.sum()):
         raise AssertionError(f"{built.path}: the loader's false positives differ from those computed from scores")
     return result
 
 
-def cheapest_one_threshold(prepared, folder, forest, scores, heldout_scores, reference: float) -> Measured | None:
+def cheapest_one_threshold(prepared, folder, forest, scores, probe_scores, reference: float) -> Measured | None:
     """(b) at equal measured FPR: of the one-threshold filters planned at reference x 2^(j/4), j in
     ONE_THRESHOLD_STEPS, the smallest whose measured held-out rate is at most the reference (None
     if none is). Choosing among them on the held-out keys can only flatter this baseline."""
@@ -260,7 +272,7 @@ def cheapest_one_threshold(prepared, folder, forest, scores, heldout_scores, ref
         if planned >= 1.0:
             continue
         single = plan_single_threshold(scores.member_scores, scores.validation_scores, scores.validation_weights, planned)
-        built = build_artifact(prepared, folder / f"one{step:+d}.tamis", forest, single, scores.member_scores, heldout_scores)
+        built = build_artifact(prepared, folder / f"one{step:+d}.tamis", forest, single, scores.member_scores, probe_scores)
         candidate = measured("one threshold", built.path.stat().st_size, built.answers, prepared)
         if candidate.rate <= reference and (best is None or candidate.bytes < best[0].bytes):
             best = (candidate, built)
@@ -286,10 +298,9 @@ class TargetResult:
 
 
 def refusal(prepared: Prepared, target: float) -> str:
-    corpus, gate = prepared.corpus, prepared.config.gate
-    sample = verify.heldout_sample(corpus.heldout, corpus.has_counts)
-    needed = max(verify.needed_heldout(target, gate.confidence), gate.min_heldout)
-    return f"refused (min_heldout): the held-out part weighs {sample:,.0f} draws, {needed:,} needed"
+    strata = verify.strata_of(prepared.corpus)
+    needed = verify.needed_heldout_lookups(strata, target, prepared.config.gate.confidence)
+    return f"refused (min_heldout): the held-out tail has {strata.heldout_lookups:,} lookups, {needed:,.0f} needed"
 
 
 def explain(prepared: Prepared, choice, plan, scores, full: Measured, filters, aim: float, reference: float | None) -> dict:
@@ -321,18 +332,18 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
     """(a), (b) and (c) at one target, then (a), (b) and the ideal at the full artifact's rate F*."""
     corpus = prepared.corpus
     config = with_overrides(prepared.config, target={"fpr": target})
+    strata = verify.strata_of(corpus)
     try:
-        sample = verify.require_heldout(corpus.heldout, corpus.has_counts, target, config.gate, config.corpus.heldout_share)
+        verify.require_heldout(strata, target, config.gate, config.corpus.heldout_share)
     except BadInput:
         return TargetResult(prepared.name, target, refused=refusal(prepared, target))
-    plan_sample = verify.heldout_sample(corpus.validation, corpus.has_counts)
-    aim = verify.aim_fpr(target, sample, plan_sample, config.gate.confidence, config.gate.aim_sigmas)
+    aim = verify.aim_fpr(target, strata, corpus.validation.counts, config.gate.confidence, config.gate.aim_sigmas)
     started = time.perf_counter()
     choice = train_model.fn(corpus, prepared.train, prepared.features, aim, config, quiet)
     plan, scores = choose_regions(run_in_process, corpus, prepared.features, choice.forest, aim, config)
-    heldout_scores = score_batch(choice.forest, prepared.heldout_features)
+    probe_scores = score_batch(choice.forest, prepared.probe_features)
     build = functools.partial(
-        build_artifact, prepared, forest=choice.forest, member_scores=scores.member_scores, heldout_scores=heldout_scores
+        build_artifact, prepared, forest=choice.forest, member_scores=scores.member_scores, probe_scores=probe_scores
     )
     full_built = build(folder / "full.tamis", plan=plan)
     full = through_loader(prepared, full_built, "full")
@@ -351,7 +362,7 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
     return dataclasses.replace(
         result,
         bloom_at_full=plain_bloom_bytes(members, reference),
-        one_at_full=cheapest_one_threshold(prepared, folder, choice.forest, scores, heldout_scores, reference),
+        one_at_full=cheapest_one_threshold(prepared, folder, choice.forest, scores, probe_scores, reference),
         ideal=ideal_bytes(members, reference, plan.kl_bits, choice.model_bytes),
         clamped_ideal=clamped_ideal_bytes(plan.member_counts, plan.nonmember_shares, reference, choice.model_bytes),
         details=details,

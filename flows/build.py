@@ -178,9 +178,16 @@ def answer_chunk(chunk: Chunk, path: Path, every_path: bool) -> np.ndarray:
 
 
 def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: corpus_stage.KeySet, spec: dict, config: BuildConfig) -> dict[str, np.ndarray]:
-    """Feature matrices of all members, the training sample and the validation non-members."""
-    parts = {"members": corpus.members, "train": train.keys, "validation": corpus.validation.keys}
+    """Feature matrices of all members, the light training sample, the validation keys and the heavy keys."""
+    parts = {"members": corpus.members, "train": train.keys, "validation": corpus.validation.keys, "heavy": corpus.heavy.keys}
     return map_parts(run_chunks, featurize_chunk, parts, config.compute.chunk_keys, spec)
+
+
+def training_keys(corpus: corpus_stage.Corpus, config: BuildConfig) -> corpus_stage.KeySet:
+    """The light training keys that train, with room left in model.train_nonmembers for every
+    heavy key (they all train, after these)."""
+    room = max(config.model.train_nonmembers - len(corpus.heavy.keys), 1)
+    return corpus_stage.sample_keys(corpus.train, room, config.model.seed)
 
 
 @_stage("model")
@@ -197,10 +204,10 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
 
     inputs = (
         X["members"],
-        X["train"],
-        train.counts.astype(np.float64),
-        X["validation"],
-        corpus.validation.counts.astype(np.float64),
+        np.vstack([X["train"], X["heavy"]]),
+        np.concatenate([train.counts, corpus.heavy.counts]).astype(np.float64),
+        np.vstack([X["validation"], X["heavy"]]),
+        corpus_stage.plan_weights(corpus),
         filter_bytes,
         config.model,
     )
@@ -213,11 +220,14 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
 
 
 def choose_regions(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, aim: float, config: BuildConfig):
-    """Scores of the members and validation non-members, and the region plan they lead to."""
-    parts = {"members": X["members"], "validation": X["validation"]}
+    """Scores of the members, the validation keys and the heavy keys, and the region plan they lead
+    to (the heavy keys with their exact scores and weights)."""
+    parts = {"members": X["members"], "validation": X["validation"], "heavy": X["heavy"]}
     scores = map_parts(run_chunks, score_chunk, parts, config.compute.chunk_keys, forest)
-    plan = plan_regions(scores["members"], scores["validation"], corpus.validation.counts, aim, config.regions)
-    return plan, ScoreSample(scores["members"], scores["validation"], corpus.validation.counts)
+    nonmember_scores = np.concatenate([scores["validation"], scores["heavy"]])
+    weights = corpus_stage.plan_weights(corpus)
+    plan = plan_regions(scores["members"], nonmember_scores, weights, aim, config.regions)
+    return plan, ScoreSample(scores["members"], nonmember_scores, weights)
 
 
 def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, config: BuildConfig) -> list[RegionFilter]:
@@ -279,17 +289,18 @@ def write_package(path: Path, spec: dict, forest, plan, filters, hash_seed: int,
 
 def verify_package(run_chunks: ChunkMap, path: Path, corpus, config: BuildConfig) -> verify.Verification:
     """Every member and a sample of held-out keys through every answer path of the written
-    artifact, and every held-out key through the service's path, chunk by chunk."""
+    artifact, and every heavy and held-out key through the service's path, chunk by chunk."""
     every_path = {"members": corpus.members, "sample": verify.path_sample(corpus.heldout.keys)}
     answers = map_parts(run_chunks, answer_chunk, every_path, config.compute.chunk_keys, path, True)
-    served = map_parts(run_chunks, answer_chunk, {"heldout": corpus.heldout.keys}, config.compute.chunk_keys, path, False)
-    return verify.verification(answers["members"], answers["sample"], served["heldout"], corpus.heldout,
-                               corpus.has_counts, config.gate.confidence)
+    parts = {"heavy": corpus.heavy.keys, "heldout": corpus.heldout.keys}
+    served = map_parts(run_chunks, answer_chunk, parts, config.compute.chunk_keys, path, False)
+    return verify.verification(answers["members"], answers["sample"], served["heavy"], served["heldout"],
+                               verify.strata_of(corpus), config.gate.confidence)
 
 
 @_stage("drift")
 def measure_in_service(store: Path, corpus, config: BuildConfig) -> Drift:
-    return measure_drift(store, corpus.members, corpus.heldout, corpus.has_counts, config.gate.confidence)
+    return measure_drift(store, corpus, config.gate.confidence)
 
 
 @_stage("report")
@@ -394,14 +405,12 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
     with stages.stage("corpus"):
         corpus = read_corpus(quote(config))
         # rule min_heldout: a corpus that cannot show the target is met stops here, before training
-        heldout_size = verify.require_heldout(
-            corpus.heldout, corpus.has_counts, config.target.fpr, config.gate, config.corpus.heldout_share
-        )
+        strata = verify.strata_of(corpus)
+        verify.require_heldout(strata, config.target.fpr, config.gate, config.corpus.heldout_share)
     provenance = build_provenance(config, corpus)
-    plan_size = verify.heldout_sample(corpus.validation, corpus.has_counts)
-    aim = verify.aim_fpr(config.target.fpr, heldout_size, plan_size, config.gate.confidence, config.gate.aim_sigmas)
+    aim = verify.aim_fpr(config.target.fpr, strata, corpus.validation.counts, config.gate.confidence, config.gate.aim_sigmas)
     spec = default_feature_spec()
-    train = corpus_stage.sample_keys(corpus.train, config.model.train_nonmembers, config.model.seed)
+    train = training_keys(corpus, config)
     with stages.stage("features"):
         X = extract_features(stages.chunks("features"), corpus, train, spec, config)
     choice = stages.run("model", train_model, corpus, train, X, aim, config, stepped=True)

@@ -133,6 +133,24 @@ def plain_filter_text(plain: dict) -> str:
     )
 
 
+def strata_lines(strata: dict | None) -> list[str]:
+    """The two strata in a line, and a warning when the aim fell below half the target."""
+    if not strata:
+        return []
+    lines = [
+        f"  heavy keys (at least {strata['tau']:,} lookups) {strata['heavy_keys']:,}, {strata['heavy_share']:.1%} of lookups, "
+        f"false positives {strata['heavy_false_positive_share']:.4%} of lookups; tail rate {strata['tail_fpr']:.4%} "
+        f"(upper bound {strata['tail_fpr_upper']:.4%}) on {strata['tail_heldout_keys']:,} held-out keys"
+    ]
+    if strata["aim_below_half_target"]:
+        lines.append(
+            f"  note: the plan aimed at {strata['aim_fpr']:.4%}, below half the target: the held-out tail is too small "
+            f"to show a rate nearer the target, so the artifact is larger than it needs to be; a longer lookup log "
+            f"(or a lower corpus.heavy_count) lets it aim closer"
+        )
+    return lines
+
+
 def summary_text(report: dict, folder: Path) -> str:
     size, base, held = report["size"], report["baseline"], report["heldout"]
     status = f"published version {report['version']}" if report["gate"]["passed"] else "REFUSED by the gate"
@@ -143,8 +161,9 @@ def summary_text(report: dict, folder: Path) -> str:
         f"  size {size['total_bytes']:,} bytes ({size['bits_per_member']:.2f} bits/member; model {size['model_bytes']:,}, "
         f"filters {size['filter_bytes']:,})",
         f"  plain Bloom filter at the same target {base['bloom_bytes']:,} bytes: ratio {base['ratio']:.3f}",
-        f"  held-out FPR {held['fpr']:.4%} (upper bound {held['fpr_upper']:.4%} at {held['confidence']:.0%}), "
-        f"target {report['target_fpr']:.4%}",
+        f"  FPR {held['fpr']:.4%} (upper bound {held['fpr_upper']:.4%} at {held['confidence']:.0%}), "
+        f"target {report['target_fpr']:.4%}, aim {report['aim_fpr']:.4%}",
+        *strata_lines(report.get("strata")),
         f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
         f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
     ]

@@ -3,7 +3,8 @@
 A config file has these tables (every key optional unless marked; `configs/demo.toml` shows them all):
 
     [corpus]   members*, non_members* (paths, relative to the config file), key_column, count_column,
-               key_encoding, max_key_bytes, conflicts, split_seed, validation_share, heldout_share
+               key_encoding, max_key_bytes, conflicts, split_seed, validation_share, heldout_share,
+               heavy_count
     [target]   fpr*
     [model]    the fields of ModelSettings (how tamis.model trains and chooses)
     [regions]  the fields of tamis.regions.RegionSettings
@@ -60,6 +61,9 @@ class CorpusSettings:
     split_seed: int = field(default=0x7A31, metadata={"range": (0, (1 << 64) - 1)})
     validation_share: float = field(default=0.3, metadata={"range": (0.05, 0.9)})
     heldout_share: float = field(default=0.3, metadata={"range": (0.05, 0.9)})
+    # tau: non-members looked up at least this many times in the window are heavy, answered exactly
+    # rather than sampled (tamis.corpus.heavy_cutoff); 0 lets the build choose (44: see there)
+    heavy_count: int = field(default=0, metadata={"range": (0, 1 << 53)})
 
     def __post_init__(self) -> None:
         if not self.key_column:
@@ -68,6 +72,8 @@ class CorpusSettings:
             raise ValueError(f"key_column and count_column must be different columns, both are {self.key_column!r}")
         if self.validation_share + self.heldout_share > 0.9:
             raise ValueError("validation_share + heldout_share must leave at least 0.1 of the non-members for training")
+        if self.heavy_count == 1:
+            raise ValueError("heavy_count must be 0 (automatic) or at least 2: at 1 every key would be heavy and none left to sample")
 
 
 # Training weight of a non-member as a function of its lookup count.

@@ -19,9 +19,11 @@ Before reading, the memory the build will need is estimated from the file sizes
 (`estimate_build_memory`), and a corpus that cannot fit is refused at once rather than after
 minutes of reading and training.
 
-Non-members are split by a seeded xxh3-64 hash of the key, so a key stays in the same part from one
-nightly build to the next (invariant 3): `train` teaches the model, `validation` gives the region
-plan its non-member shares, `heldout` only measures the false-positive rate.
+Non-members looked up at least tau times in the window (`heavy_cutoff`) are heavy: a take-all
+stratum that trains the model, enters the region plan with its exact weights and is answered
+exactly by verify (see tamis.verify). The light ones are split by a seeded xxh3-64 hash of the key,
+so a key stays in the same part from one nightly build to the next (invariant 3): `train` teaches
+the model, `validation` gives the region plan the tail's shares, `heldout` only measures the tail.
 """
 
 from __future__ import annotations
@@ -86,6 +88,19 @@ MEMORY_LIMIT_ENV = "TAMIS_MEMORY_LIMIT"
 _SIZE_SUFFIXES = {"": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
 
 
+# The automatic tau: a key is heavy once its window count is known to within 25% at 95% confidence
+# (Poisson: 1.645 / sqrt(c) <= 0.25, so c >= 43.3): its share of tomorrow's lookups is then its
+# share of the window's, well enough to answer it exactly instead of sampling it. Lower cutoffs
+# take more keys out of the sample (a tighter tail bound) but treat keys as recurring whose count
+# is mostly noise; benchmarks/heavy_cutoff.py compares the bytes of other choices.
+AUTO_HEAVY_COUNT = 44
+
+
+def heavy_cutoff(settings: CorpusSettings) -> int:
+    """tau: corpus.heavy_count, or AUTO_HEAVY_COUNT when it is 0."""
+    return settings.heavy_count or AUTO_HEAVY_COUNT
+
+
 @dataclass(frozen=True)
 class KeySet:
     """Distinct keys with their lookup counts (1 each when the source has none)."""
@@ -100,12 +115,35 @@ class KeySet:
 
 @dataclass(frozen=True)
 class Corpus:
+    """Members; the heavy non-members (count at least tau); the light ones split by hash."""
+
     members: list[bytes]
+    heavy: KeySet
     train: KeySet
     validation: KeySet
     heldout: KeySet
+    tau: int
     has_counts: bool
     stats: dict
+
+    @property
+    def lookups(self) -> int:
+        """All non-member lookups of the window."""
+        return sum(part.lookups for part in (self.heavy, self.train, self.validation, self.heldout))
+
+    @property
+    def non_members(self) -> int:
+        return sum(len(part.keys) for part in (self.heavy, self.train, self.validation, self.heldout))
+
+
+def plan_weights(corpus: Corpus) -> np.ndarray:
+    """Weights of the validation keys then the heavy keys, for the region plan and the model's
+    pricing: heavy keys weigh their counts, validation keys their counts scaled so that together
+    they weigh what all light keys weigh in the window. Shares of these weights are then the
+    window's shares of lookups, heavy keys exact and the tail estimated."""
+    light = corpus.lookups - corpus.heavy.lookups
+    scale = light / corpus.validation.lookups
+    return np.concatenate([corpus.validation.counts * scale, corpus.heavy.counts]).astype(np.float64)
 
 
 @dataclass(frozen=True)
@@ -601,21 +639,25 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
     if not non_keys:
         raise BadInput(f"{non_members_path}: every non-member is also a member; no non-members are left to measure")
 
+    tau = heavy_cutoff(settings)
+    heavy = non_counts >= tau
     bucket = split_buckets(non_keys, settings.split_seed)
     heldout_end = round(settings.heldout_share * _SPLIT_BUCKETS)
     validation_end = heldout_end + round(settings.validation_share * _SPLIT_BUCKETS)
     parts = {
-        "heldout": _subset(non_keys, non_counts, bucket < heldout_end),
-        "validation": _subset(non_keys, non_counts, (bucket >= heldout_end) & (bucket < validation_end)),
-        "train": _subset(non_keys, non_counts, bucket >= validation_end),
+        "heavy": _subset(non_keys, non_counts, heavy),
+        "heldout": _subset(non_keys, non_counts, ~heavy & (bucket < heldout_end)),
+        "validation": _subset(non_keys, non_counts, ~heavy & (bucket >= heldout_end) & (bucket < validation_end)),
+        "train": _subset(non_keys, non_counts, ~heavy & (bucket >= validation_end)),
     }
     # the held-out part's size is judged against the target by the flow; the model needs the others
     for name in ("train", "validation"):
         if not parts[name].keys:
             raise BadInput(
-                f"{non_members_path}: the hash split of its {len(non_keys):,} distinct non-members leaves no {name} keys "
-                f"(corpus.validation_share = {settings.validation_share}, heldout_share = {settings.heldout_share}); "
-                f"give more non-members"
+                f"{non_members_path}: the hash split of its {len(non_keys):,} distinct light non-members (looked up "
+                f"fewer than tau = {tau:,} times) leaves no {name} keys (corpus.validation_share = "
+                f"{settings.validation_share}, heldout_share = {settings.heldout_share}); give more non-members, "
+                f"or raise corpus.heavy_count"
             )
     stats = {
         "member_rows": members_raw.rows,
@@ -624,4 +666,4 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
         "non_member_duplicates": non_raw.rows - len(non_keys) - conflicts,
         "conflicts": conflicts,
     }
-    return Corpus(members=members, has_counts=has_counts, stats=stats, **parts)
+    return Corpus(members=members, tau=tau, has_counts=has_counts, stats=stats, **parts)

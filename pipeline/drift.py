@@ -3,9 +3,9 @@
 Every build opens the store's CURRENT artifact with the loader a service uses and measures it the
 way verify measures the new one: the members of today's corpus it answers "no" to (keys added since
 it was built; it held every member of its own corpus) and its false-positive rate on today's
-held-out non-members. The split of non-members is a seeded hash of the key, so with an unchanged
-corpus.split_seed today's held-out keys were held out of the old build too and its rate on them is
-honest. The figures say what rebuilding buys; the change limits of the gate compare against the
+lookups, heavy keys answered exactly and the tail bounded on held-out light keys. The split of light
+keys is a seeded hash of the key, so with an unchanged corpus.split_seed today's held-out keys were
+held out of the old build too (unless they were heavy then) and its rate on them is honest. The figures say what rebuilding buys; the change limits of the gate compare against the
 same version (`verify.Baseline`).
 
 A version in service that cannot be opened or evaluated is reported with the reason; it never stops
@@ -19,7 +19,7 @@ from pathlib import Path
 
 from tamis import publish
 from tamis.artifact import ArtifactError
-from tamis.corpus import KeySet
+from tamis.corpus import Corpus
 from tamis.loader import open_filter
 from tamis.verify import Baseline, Measurement, check_filter
 
@@ -75,8 +75,9 @@ class Drift:
         }
 
 
-def measure_drift(store: Path, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Drift:
-    """Open the store's CURRENT artifact and measure it on today's members and held-out keys.
+def measure_drift(store: Path, corpus: Corpus, confidence: float) -> Drift:
+    """Open the store's CURRENT artifact and measure it on today's members, heavy keys and held-out
+    light keys, with the estimator and bound the gate uses (`tamis.verify.check_filter`).
 
     Call it with the store lock held, so that the version measured is the one a publish replaces.
     """
@@ -91,7 +92,7 @@ def measure_drift(store: Path, members: list[bytes], heldout: KeySet, weighted: 
         loaded = open_filter(path)
         size = path.stat().st_size
         built_with = sum(int(region["members"]) for region in loaded.info["regions"])
-        checked = check_filter(loaded, members, heldout, weighted, confidence)
+        checked = check_filter(loaded, corpus, confidence)
     # the loader raises ArtifactError for any file it cannot use; OSError covers a file that
     # vanished after opening, and ValueError / KeyError / TypeError a header it accepted but
     # that this version of the tool cannot evaluate. None of them is a reason to stop the build.

@@ -64,8 +64,6 @@ def build_report(
     members = len(corpus.members)
     target = config.target.fpr
     bloom_bytes = math.ceil(bloom_bits(members, target) / 8)
-    non_members = len(corpus.train.keys) + len(corpus.validation.keys) + len(corpus.heldout.keys)
-    lookups = corpus.train.lookups + corpus.validation.lookups + corpus.heldout.lookups
     reasons = refusal_reasons(checks)
     return {
         "version": version,
@@ -83,13 +81,14 @@ def build_report(
         "aim_fpr": aim_fpr,
         "corpus": {
             "members": members,
-            "non_members": non_members,
-            "lookups": lookups,
+            "non_members": corpus.non_members,
+            "lookups": corpus.lookups,
             "has_counts": corpus.has_counts,
-            "split": {part: len(getattr(corpus, part).keys) for part in ("train", "validation", "heldout")},
+            "split": {part: len(getattr(corpus, part).keys) for part in ("heavy", "train", "validation", "heldout")},
             **corpus.stats,
         },
         "heldout": verification.heldout.as_report(),
+        "strata": {**verification.heldout.strata_report(), "aim_fpr": aim_fpr, "aim_below_half_target": aim_fpr < target / 2},
         "false_negatives": verification.false_negatives,
         "answer_paths": verification.paths.as_report(),
         "size": {

@@ -255,6 +255,24 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
     ]
 
 
+def strata_rows(strata: dict) -> list[tuple[str, object]]:
+    """The two strata of the bound: heavy keys answered exactly, the tail sampled."""
+    aim_note = " (below half the target: the held-out tail is too small to aim closer)" if strata["aim_below_half_target"] else ""
+    return [
+        ("tau (heavy from this many lookups)", _count(strata["tau"])),
+        ("heavy keys / their lookups", f"{strata['heavy_keys']:,} / {strata['heavy_lookups']:,}"),
+        ("heavy share of lookups", _percent(strata["heavy_share"])),
+        ("heavy false positives (keys / share of lookups)",
+         f"{strata['heavy_false_positive_keys']:,} / {_percent(strata['heavy_false_positive_share'])}"),
+        ("tail share of lookups", _percent(strata["tail_share"])),
+        ("tail held-out keys / lookups", f"{strata['tail_heldout_keys']:,} / {strata['tail_heldout_lookups']:,}"),
+        ("tail effective sample", f"{strata['tail_effective_sample']:,.1f}"),
+        (f"tail rate / its upper bound ({strata['confidence']:.0%})",
+         f"{_percent(strata['tail_fpr'])} / {_percent(strata['tail_fpr_upper'])}"),
+        ("planned for (aim)", _percent(strata["aim_fpr"]) + aim_note),
+    ]
+
+
 def gate_rows(report: dict) -> list[list[str]]:
     rows = []
     for check in report["gate"]["checks"]:
@@ -397,6 +415,8 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         "<h2>Key numbers</h2>",
         _pairs(key_numbers(report)),
         "<dl>" + "".join(f"<dt>{html.escape(term)}</dt><dd>{html.escape(text)}</dd>" for term, text in TERMS) + "</dl>",
+        "<h2>Lookups by stratum</h2>",
+        _pairs(strata_rows(report["strata"])),
         "<h2>Score distributions</h2>",
         *_figure_html(figures, "score distributions"),
         "<h2>Regions</h2>",

@@ -1,15 +1,36 @@
-"""Verify stage: reload the written artifact with the loader, check every member, measure the
-false-positive rate on held-out non-members, and decide the gate.
+"""Verify stage: reload the written artifact with the loader, check every member, bound the
+false-positive rate the service will see, and decide the gate.
 
-The held-out keys were never used for training, model choice or region choice (invariant 3), so the
-rate measured here is an honest estimate of the rate the service will see on lookups drawn like them.
+The rate is by lookups: tomorrow's non-member lookups are assumed to be drawn like the window's
+(each lookup of key k with probability pi_k), and the artifact's rate is R = sum_k pi_k a_k, with
+a_k = 1 when it answers "maybe" to non-member k. The window's counts c_k are that draw, L lookups in
+all, so sum_k c_k a_k / L estimates R without bias whatever the law. Two strata carry it:
+
+- heavy keys (window count at least tau): a take-all ("certainty") stratum, as in survey and audit
+  sampling, where every unit above a size cutoff is examined and only the rest is sampled
+  (W. G. Cochran, Sampling Techniques, 3rd ed., Wiley 1977, ch. 5 on stratification; recalled from
+  memory). Every heavy key is answered on the written artifact, so its part of the sum is known;
+  only its count is a draw (Poisson: variance about c_k).
+- the tail: light keys (count below tau) and keys the window never saw. Light keys are split by a
+  seeded hash; the held-out share s of their lookups estimates the tail's false-positive lookups
+  as (held-out false-positive lookups) / s. Each held-out key adds a weight c_k / s below tau / s.
+
+The upper bound treats the total as a weighted sum of Poisson counts and takes the gamma interval of
+M. P. Fay and E. J. Feuer ("Confidence intervals for directly standardized rates: a method based on
+the gamma distribution", Statistics in Medicine 16, 1997; the form below recalled from memory):
+with total y, variance estimate v = sum of squared weights of the events, and w the largest weight
+a unit can have, the upper limit of the mean is the `confidence` quantile of a gamma distribution of
+shape (y + w)^2 / (v + w^2) and scale (v + w^2) / (y + w). The variance comes from the weights of
+the keys that were false positives, so the bound stays valid when popularity and false positives
+are correlated; with one lookup a key it is the exact Poisson (Garwood) bound. Its coverage is
+checked by simulation in tests/test_coverage.py.
 
 Gate rules (each refusal starts with the rule's name; the thresholds are `config.GateSettings`):
 
-    min_heldout          before training: the held-out part can bound the rate at the target at all
+    min_heldout          before training: the held-out tail can bound the rate at the target at all
     false_negatives      every member answers "maybe", through every answer path of the loader
     answer_paths         the paths answer alike: every member and a sample of held-out keys
-    fpr_upper            the held-out rate's upper confidence bound <= target * (1 + fpr_slack)
+    fpr_upper            the rate's upper confidence bound <= target * (1 + fpr_slack)
     max_artifact_bytes   the artifact file is at most this large
     max_size_growth      at most this share more bytes than the version in service
     max_member_drop      at most this share fewer members than the version in service
@@ -26,21 +47,118 @@ import numpy as np
 from scipy import stats
 
 from tamis.config import GateSettings
-from tamis.corpus import KeySet
+from tamis.corpus import Corpus
 from tamis.errors import BadInput
 from tamis.loader import MembershipFilter, answer_paths
 
 
+def gamma_upper(total, variance, max_weight, confidence: float):
+    """Fay and Feuer's upper confidence limit on the mean of a weighted sum of Poisson counts
+    (see the module docstring); elementwise on arrays. With unit weights (total = variance = x,
+    max_weight = 1) it is the exact Poisson bound, the `confidence` quantile of Gamma(x + 1)."""
+    total, variance, weight = (np.asarray(a, dtype=np.float64) for a in (total, variance, max_weight))
+    shape = (total + weight) ** 2 / (variance + weight**2)
+    scale = (variance + weight**2) / (total + weight)
+    return stats.gamma.ppf(confidence, shape, scale=scale)
+
+
+def rate_upper(lookups, heavy_fp_lookups, tail_fp_lookups, tail_fp_squares, tail_sampled, tail_max_count, confidence: float):
+    """The upper confidence bound on the lookup-weighted false-positive rate R from the strata's sums.
+
+    `heavy_fp_lookups`: window lookups of heavy keys answered "maybe" (each a Poisson count);
+    `tail_fp_lookups` and `tail_fp_squares`: sum of c and of c^2 over held-out light keys answered
+    "maybe"; `tail_sampled`: the held-out share of the light keys' lookups (0 when the window has no
+    light key); `tail_max_count`: the largest count of a light key. The tail's false-positive lookups
+    are estimated as held-out ones / share, each key a weight c / share. Elementwise on arrays, so a
+    simulation of many builds calls the very function the build calls.
+    """
+    sampled = np.asarray(tail_sampled, dtype=np.float64)
+    inverse = np.divide(1.0, sampled, out=np.zeros_like(sampled), where=sampled > 0)
+    total = heavy_fp_lookups + tail_fp_lookups * inverse
+    variance = heavy_fp_lookups + tail_fp_squares * inverse**2
+    weight = np.maximum(tail_max_count * inverse, 1.0)
+    return np.minimum(gamma_upper(total, variance, weight, confidence) / lookups, 1.0)
+
+
+def effective_sample_size(weights: np.ndarray) -> float:
+    """Kish's effective sample size (sum w)^2 / sum w^2 of a weighted sample (L. Kish, Survey
+    Sampling, 1965): how many unweighted draws carry the same information as these weighted ones."""
+    w = weights.astype(np.float64)
+    square_sum = float(np.dot(w, w))
+    return float(w.sum()) ** 2 / square_sum if square_sum else 0.0
+
+
+@dataclass(frozen=True)
+class Strata:
+    """The window as the bound sees it: the cutoff tau, all non-member lookups, the heavy keys'
+    counts, the light keys' lookups (every part) and largest count, the held-out light keys' counts."""
+
+    tau: int
+    lookups: int
+    heavy_counts: np.ndarray
+    tail_lookups: int
+    tail_max_count: int
+    heldout_counts: np.ndarray
+
+    @property
+    def heavy_lookups(self) -> int:
+        return int(self.heavy_counts.sum())
+
+    @property
+    def heldout_lookups(self) -> int:
+        return int(self.heldout_counts.sum())
+
+    @property
+    def tail_sampled(self) -> float:
+        """The held-out share of the light keys' lookups."""
+        return self.heldout_lookups / self.tail_lookups if self.tail_lookups else 0.0
+
+    @property
+    def heaviest_weight(self) -> float:
+        """The largest weight a held-out key can carry in the tail's estimate (at least 1)."""
+        return max(self.tail_max_count / self.tail_sampled, 1.0) if self.tail_sampled else 1.0
+
+
+def strata_of(corpus: Corpus) -> Strata:
+    light = (corpus.train.counts, corpus.validation.counts, corpus.heldout.counts)
+    return Strata(
+        tau=corpus.tau,
+        lookups=corpus.lookups,
+        heavy_counts=corpus.heavy.counts,
+        tail_lookups=int(sum(int(c.sum()) for c in light)),
+        tail_max_count=int(max((int(c.max()) for c in light if len(c)), default=0)),
+        heldout_counts=corpus.heldout.counts,
+    )
+
+
 @dataclass(frozen=True)
 class Measurement:
+    """The false-positive rate of one artifact on one corpus, by stratum.
+
+    keys / lookups / false_positive_*: the held-out light keys (the tail's sample) and those
+    answered maybe; heavy_*: the take-all stratum; fpr: the estimate of R, (heavy false-positive
+    lookups + tail ones / share) / all lookups; fpr_upper: its upper bound at `confidence`;
+    tail_fpr / tail_fpr_upper: the tail's own rate and bound; effective_sample: Kish's size of
+    the held-out light keys' counts.
+    """
+
+    confidence: float
+    tau: int
+    total_lookups: int
+    heavy_keys: int
+    heavy_lookups: int
+    heavy_false_positive_keys: int
+    heavy_false_positive_lookups: int
     keys: int
     lookups: int
     false_positive_keys: int
     false_positive_lookups: int
+    tail_lookups: int
+    tail_fpr: float
+    tail_fpr_upper: float
+    effective_sample: float
     fpr: float
     fpr_upper: float
-    confidence: float
-    effective_sample: float
 
     def as_report(self) -> dict:
         return {
@@ -54,64 +172,98 @@ class Measurement:
             "effective_sample": self.effective_sample,
         }
 
-
-def clopper_pearson_upper(successes: float, trials: float, confidence: float) -> float:
-    """One-sided upper confidence bound on a binomial rate: the `confidence` quantile of
-    Beta(x + 1, n - x) (C. J. Clopper and E. S. Pearson, Biometrika 26(4), 1934). Real-valued x and n
-    are allowed, for effective sample sizes."""
-    if trials <= 0:
-        return 1.0
-    if successes >= trials:
-        return 1.0
-    return float(stats.beta.ppf(confidence, successes + 1.0, trials - successes))
-
-
-def effective_sample_size(weights: np.ndarray) -> float:
-    """Kish's effective sample size (sum w)^2 / sum w^2 of a weighted sample (L. Kish, Survey
-    Sampling, 1965): how many unweighted draws carry the same information as these weighted ones."""
-    w = weights.astype(np.float64)
-    square_sum = float(np.dot(w, w))
-    return float(w.sum()) ** 2 / square_sum if square_sum else 0.0
-
-
-def measure_fpr(answers: np.ndarray, heldout: KeySet, weighted: bool, confidence: float) -> Measurement:
-    """The false-positive rate of `answers` (True = maybe) on held-out non-members.
-
-    By lookups when the corpus has counts (the rate the service sees), by distinct keys otherwise;
-    the upper bound is Clopper-Pearson on distinct keys, or on the effective sample size with counts.
-    """
-    counts = heldout.counts
-    fp_keys = int(answers.sum())
-    fp_lookups = int(counts[answers].sum())
-    lookups = int(counts.sum())
-    if weighted:
-        fpr = fp_lookups / lookups
-        n_eff = effective_sample_size(counts)
-        upper = clopper_pearson_upper(fpr * n_eff, n_eff, confidence)
-    else:
-        fpr = fp_keys / len(answers)
-        n_eff = float(len(answers))
-        upper = clopper_pearson_upper(fp_keys, len(answers), confidence)
-    return Measurement(len(answers), lookups, fp_keys, fp_lookups, fpr, upper, confidence, n_eff)
+    def strata_report(self) -> dict:
+        """The two strata, as report.json's `strata` shows them."""
+        total = self.total_lookups
+        return {
+            "tau": self.tau,
+            "lookups": total,
+            "heavy_keys": self.heavy_keys,
+            "heavy_lookups": self.heavy_lookups,
+            "heavy_share": self.heavy_lookups / total if total else 0.0,
+            "heavy_false_positive_keys": self.heavy_false_positive_keys,
+            "heavy_false_positive_lookups": self.heavy_false_positive_lookups,
+            "heavy_false_positive_share": self.heavy_false_positive_lookups / total if total else 0.0,
+            "tail_lookups": self.tail_lookups,
+            "tail_share": self.tail_lookups / total if total else 0.0,
+            "tail_heldout_keys": self.keys,
+            "tail_heldout_lookups": self.lookups,
+            "tail_effective_sample": self.effective_sample,
+            "tail_fpr": self.tail_fpr,
+            "tail_fpr_upper": self.tail_fpr_upper,
+            "confidence": self.confidence,
+        }
 
 
-def aim_fpr(target: float, effective_sample: float, plan_sample: float, confidence: float, aim_sigmas: float) -> float:
+def measure(heavy_answers: np.ndarray, heldout_answers: np.ndarray, strata: Strata, confidence: float) -> Measurement:
+    """The rate of an artifact from its answers (True = maybe) to every heavy key and every
+    held-out light key. Without lookup counts every count is 1 and this is the rate by keys."""
+    heavy_fp = strata.heavy_counts[heavy_answers]
+    tail_fp = strata.heldout_counts[heldout_answers].astype(np.float64)
+    heavy_fp_lookups, tail_fp_lookups = int(heavy_fp.sum()), int(tail_fp.sum())
+    squares = float(np.dot(tail_fp, tail_fp))
+    sampled = strata.tail_sampled
+    tail_estimate = tail_fp_lookups / sampled if sampled else 0.0
+    tail_upper = rate_upper(strata.tail_lookups, 0, tail_fp_lookups, squares, sampled, strata.tail_max_count, confidence) if strata.tail_lookups else 0.0
+    return Measurement(
+        confidence=confidence,
+        tau=strata.tau,
+        total_lookups=strata.lookups,
+        heavy_keys=len(strata.heavy_counts),
+        heavy_lookups=strata.heavy_lookups,
+        heavy_false_positive_keys=len(heavy_fp),
+        heavy_false_positive_lookups=heavy_fp_lookups,
+        keys=len(heldout_answers),
+        lookups=strata.heldout_lookups,
+        false_positive_keys=int(np.count_nonzero(heldout_answers)),
+        false_positive_lookups=tail_fp_lookups,
+        tail_lookups=strata.tail_lookups,
+        tail_fpr=tail_fp_lookups / strata.heldout_lookups if strata.heldout_lookups else 0.0,
+        tail_fpr_upper=float(tail_upper),
+        effective_sample=effective_sample_size(strata.heldout_counts),
+        fpr=(heavy_fp_lookups + tail_estimate) / strata.lookups,
+        fpr_upper=float(rate_upper(strata.lookups, heavy_fp_lookups, tail_fp_lookups, squares, sampled, strata.tail_max_count, confidence)),
+    )
+
+
+def aim_fpr(
+    target: float,
+    strata: Strata,
+    validation_counts: np.ndarray,
+    confidence: float,
+    aim_sigmas: float,
+    seed_candidates: int = 1,
+) -> float:
     """The rate to plan for so that a build hitting it passes the gate with high probability.
 
-    On n held-out draws a true rate f gives about f n false positives. The plan's rate is itself
-    estimated on `plan_sample` validation draws, so the count also moves with the plan's error: its
-    variance is f (1-f) n (1 + n / plan_sample), the held-out draws' own binomial variance plus n^2
-    times that of the validation estimate. In all but the unluckiest builds the count stays below
-    x(f) = f n + s sqrt(f (1-f) n (1 + n / plan_sample)) (s = `aim_sigmas` standard deviations).
-    Plan for the largest f whose x(f) still has a Clopper-Pearson upper bound at most the target;
-    both sides grow with f, so bisection finds it.
+    Planned at rate f (the same chance for every key), the gate sees a total of about f L
+    false-positive lookups, with variance f V_gate (heavy counts' Poisson noise plus the held-out
+    tail's weights: V_gate = heavy lookups + sum of held-out c^2 / s^2). The plan's own rate is
+    itself uncertain: the tail's share is estimated on validation keys (f times sum of their c^2 /
+    s_val^2), and each heavy key is a false positive by the luck of hashing (f (1 - f) sum of heavy
+    c^2). In all but the unluckiest builds the total stays below f L + s sqrt(those variances), where
+    s = `aim_sigmas` for the sampling terms; when the build picks each region's hash seed among
+    `seed_candidates` to spare the heavy keys, the luck term takes the quantile of the best of them
+    (it only shrinks). Plan for the largest f whose unlucky total still has a bound at most the
+    target; both sides grow with f, so bisection finds it.
     """
-    n = effective_sample
-    spread = n * (1 + n / plan_sample)
+    lookups = strata.lookups
+    tail_share = strata.tail_sampled
+    validation_share = float(validation_counts.sum()) / strata.tail_lookups if strata.tail_lookups else 0.0
+    heldout = strata.heldout_counts.astype(np.float64)
+    validation = validation_counts.astype(np.float64)
+    heavy = strata.heavy_counts.astype(np.float64)
+    gate_unit = strata.heavy_lookups + (float(np.dot(heldout, heldout)) / tail_share**2 if tail_share else 0.0)
+    plan_unit = float(np.dot(validation, validation)) / validation_share**2 if validation_share else 0.0
+    luck_unit = float(np.dot(heavy, heavy))
+    luck_sigmas = best_of_quantile(aim_sigmas, seed_candidates)
+    weight = strata.heaviest_weight
 
     def passes(f: float) -> bool:
-        unlucky = f * n + aim_sigmas * math.sqrt(f * (1 - f) * spread)
-        return clopper_pearson_upper(unlucky, n, confidence) <= target
+        expected = f * lookups
+        variance = f * gate_unit
+        unlucky = expected + aim_sigmas * math.sqrt(variance + f * plan_unit) + luck_sigmas * math.sqrt(f * (1 - f) * luck_unit)
+        return float(gamma_upper(unlucky, variance * unlucky / expected, weight, confidence)) / lookups <= target
 
     low, high = 0.0, target
     for _ in range(50):
@@ -120,43 +272,45 @@ def aim_fpr(target: float, effective_sample: float, plan_sample: float, confiden
     return low
 
 
-def needed_heldout(target: float, confidence: float) -> int:
-    """The fewest held-out draws for which a perfect result (no false positive) can bound the rate
-    below the target: (1 - target)^n <= 1 - confidence, i.e. n >= ln(1 - c) / ln(1 - F)."""
-    return math.ceil(math.log(1 - confidence) / math.log1p(-target))
+def best_of_quantile(sigmas: float, candidates: int) -> float:
+    """The level, in standard deviations, that the least of `candidates` independent normal draws
+    exceeds no more often than one draw exceeds `sigmas`: P(all above x) = P(one above sigmas)
+    gives x = Phi^-1(1 - p^(1/m)). Never below 0 (the aim takes no credit for the choice)."""
+    tail = stats.norm.sf(sigmas) ** (1.0 / candidates)
+    return max(0.0, float(stats.norm.isf(tail)))
 
 
-def heldout_sample(heldout: KeySet, weighted: bool) -> float:
-    """How many independent draws the held-out part is worth: its keys, or with lookup counts
-    their effective sample size (the rate is by lookups, so heavy keys weigh more)."""
-    return effective_sample_size(heldout.counts) if weighted else float(len(heldout.keys))
+def needed_heldout_lookups(strata: Strata, target: float, confidence: float) -> float:
+    """The fewest held-out light lookups for which a tail without a false positive bounds the rate
+    below the target: the bound of no event is -ln(1 - c) times the heaviest weight, tail_max_count
+    times tail lookups over held-out lookups, which must be at most target x lookups."""
+    if not strata.tail_lookups:
+        return 0.0
+    return -math.log1p(-confidence) * strata.tail_max_count * strata.tail_lookups / (target * strata.lookups)
 
 
-def require_heldout(heldout: KeySet, weighted: bool, target: float, settings: GateSettings, heldout_share: float) -> float:
-    """Rule min_heldout, before any training: stop with BadInput when the held-out part is too
-    small to show that the target is met; otherwise return its sample size (`heldout_sample`)."""
-    sample = heldout_sample(heldout, weighted)
-    statistical = needed_heldout(target, settings.confidence)
-    if sample >= max(statistical, settings.min_heldout):
-        return sample
-    if weighted:
-        have = (
-            f"{len(heldout.keys):,} held-out keys with lookup counts, worth an effective sample of {sample:,.1f} draws "
-            f"(Kish: (sum of counts)^2 / sum of squared counts; a few heavy keys weigh like few draws)"
+def require_heldout(strata: Strata, target: float, settings: GateSettings, heldout_share: float) -> None:
+    """Rule min_heldout, before any training: stop with BadInput when the held-out tail is too
+    small to show that the target is met. The heavy keys need no holding out; only the tail is asked."""
+    needed = needed_heldout_lookups(strata, target, settings.confidence)
+    have = strata.heldout_lookups
+    sample = effective_sample_size(strata.heldout_counts)
+    if have >= needed and sample >= settings.min_heldout:
+        return
+    problems = []
+    if have < needed:
+        problems.append(
+            f"a target of {target:.4%} at {settings.confidence:.0%} confidence needs at least {math.ceil(needed):,} "
+            f"held-out tail lookups (with fewer, even a tail without a false positive cannot be shown to meet it; "
+            f"the largest light count is {strata.tail_max_count:,}): about {needed / max(have, 1):,.1f} times as much log"
         )
-        unit = "draws"
-    else:
-        have = f"{len(heldout.keys):,} held-out keys"
-        unit = "keys"
-    need = (
-        f"a target of {target:.4%} at {settings.confidence:.0%} confidence needs at least {statistical:,} {unit} "
-        f"(with fewer, even a filter without a false positive cannot be shown to meet it)"
-    )
-    if settings.min_heldout > statistical:
-        need += f", and gate.min_heldout asks for {settings.min_heldout:,}"
+    if sample < settings.min_heldout:
+        problems.append(f"gate.min_heldout asks for an effective sample of {settings.min_heldout:,} held-out tail draws")
     raise BadInput(
-        f"min_heldout: the corpus has {have}; {need}. To fix: give more non-members (the sample grows about in "
-        f"proportion), raise corpus.heldout_share (now {heldout_share:g}), or raise the target"
+        f"min_heldout: the tail (keys looked up fewer than tau = {strata.tau:,} times) has {len(strata.heldout_counts):,} "
+        f"held-out keys with {have:,} lookups (effective sample {sample:,.1f}); " + "; and ".join(problems)
+        + f". To fix: give a longer lookup log (more non-members), raise corpus.heldout_share (now {heldout_share:g}), "
+        f"lower corpus.heavy_count (keys at or above it are answered exactly, not sampled), or raise the target"
     )
 
 
@@ -204,22 +358,29 @@ class Verification:
     paths: PathAgreement
 
 
-def verification(member_answers: np.ndarray, sample_answers: np.ndarray, heldout_answers: np.ndarray,
-                 heldout: KeySet, weighted: bool, confidence: float) -> Verification:
+def verification(member_answers: np.ndarray, sample_answers: np.ndarray, heavy_answers: np.ndarray,
+                 heldout_answers: np.ndarray, strata: Strata, confidence: float) -> Verification:
     """The verdict on a filter from its answers: to every member and to a sample of held-out keys
-    through every answer path ((keys, paths), `every_path_answers`), and to every held-out key
-    through the service's path. A member is a false negative when any path answers it "no"."""
+    through every answer path ((keys, paths), `every_path_answers`), and to every heavy key and
+    every held-out light key through the service's path. A member is a false negative when any
+    path answers it "no"."""
     false_negatives = int(len(member_answers) - np.count_nonzero(member_answers.all(axis=1)))
     paths = PathAgreement(answer_paths(), len(member_answers), len(sample_answers),
                           _differing(member_answers), _differing(sample_answers))
-    return Verification(false_negatives, len(member_answers), measure_fpr(heldout_answers, heldout, weighted, confidence), paths)
+    return Verification(false_negatives, len(member_answers), measure(heavy_answers, heldout_answers, strata, confidence), paths)
 
 
-def check_filter(loaded: MembershipFilter, members: list[bytes], heldout: KeySet, weighted: bool, confidence: float) -> Verification:
+def check_filter(loaded: MembershipFilter, corpus: Corpus, confidence: float) -> Verification:
     """Query every member and a sample of held-out keys through every answer path of an opened
-    filter, and every held-out key through `contains_many`."""
-    return verification(every_path_answers(loaded, members), every_path_answers(loaded, path_sample(heldout.keys)),
-                        loaded.contains_many(heldout.keys), heldout, weighted, confidence)
+    filter, and every heavy and held-out key through `contains_many`."""
+    return verification(
+        every_path_answers(loaded, corpus.members),
+        every_path_answers(loaded, path_sample(corpus.heldout.keys)),
+        loaded.contains_many(corpus.heavy.keys),
+        loaded.contains_many(corpus.heldout.keys),
+        strata_of(corpus),
+        confidence,
+    )
 
 
 @dataclass(frozen=True)
@@ -272,7 +433,7 @@ def _check_answer_paths(agreement: PathAgreement) -> GateCheck:
 def _check_fpr_upper(verification: Verification, target: float, fpr_slack: float) -> GateCheck:
     held = verification.heldout
     limit = target * (1 + fpr_slack)
-    words = f"the held-out rate's {held.confidence:.0%} upper bound {held.fpr_upper:.4%}"
+    words = f"the rate's {held.confidence:.0%} upper bound {held.fpr_upper:.4%} (heavy keys exact, the tail bounded)"
     if held.fpr_upper > limit:
         return GateCheck("fpr_upper", False, held.fpr_upper, limit, f"{words} is above the allowed {limit:.4%}")
     return GateCheck("fpr_upper", True, held.fpr_upper, limit, f"{words} is within the allowed {limit:.4%}")

@@ -117,7 +117,7 @@ BAD = [
     Case("a key on both lists with conflicts = error", members="both.txt", files={"both.txt": "good members and one non-member"},
          config='[corpus]\nconflicts = "error"\n', says=("both member and non-member", 'corpus.conflicts = "member"')),
     Case("too few held-out non-members", non_members="few.txt", files={"few.txt": "120 non-members"},
-         says=("held-out", "needs at least 59")),
+         says=("held-out", "needs at least 60 held-out tail lookups")),
     Case("too few to split", non_members="two.txt", files={"two.txt": b"alpha\nbeta\n"}, says=("two.txt", "give more non-members")),
     Case("unknown config key", early=True, config="[corpus]\ncolour = \"red\"\n", says=("unknown config key corpus.colour", "allowed in [corpus]")),
     Case("unknown config table", early=True, config="[colours]\nred = 1\n", says=("unknown config table [colours]",)),

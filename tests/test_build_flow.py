@@ -71,12 +71,13 @@ def test_long_stages_report_their_advance(published):
     steps = {stage: [e for e in events if e.stage == stage and e.kind == "step"] for stage in ("features", "model", "filters")}
     corpus = outcome.report["corpus"]
     features = steps["features"]
-    assert features[-1].done == features[-1].total == corpus["members"] + corpus["split"]["train"] + corpus["split"]["validation"]
+    split = corpus["split"]
+    assert features[-1].done == features[-1].total == corpus["members"] + split["train"] + split["validation"] + split["heavy"]
     assert [e.done for e in features] == sorted(e.done for e in features)
     assert steps["filters"][-1].done == steps["filters"][-1].total == corpus["members"]
-    # one step a chunk: the members, training and validation keys are chunked part by part
+    # one step a chunk: the members, training, validation and heavy keys are chunked part by part
     assert len(steps["filters"]) == math.ceil(corpus["members"] / CHUNK_KEYS)
-    parts = (corpus["members"], corpus["split"]["train"], corpus["split"]["validation"])
+    parts = (corpus["members"], split["train"], split["validation"], split["heavy"])
     assert len(features) == sum(math.ceil(keys / CHUNK_KEYS) for keys in parts)
     # one step per priced checkpoint: the model report lists them all
     assert [e.done for e in steps["model"]] == list(range(1, len(outcome.report["model"]["candidates"]) + 1))
@@ -183,11 +184,11 @@ def test_a_held_out_part_too_small_for_the_target_stops_before_training(corpus_f
 
     monkeypatch.setattr(build, "featurize", never)
     monkeypatch.setattr(build, "fit_model", never)
-    # 0.1% needs ceil(ln 0.05 / ln 0.999) = 2,995 draws; 12,000 held-out keys with heavy-tailed
-    # counts are worth only a few hundred
+    # 0.1% needs -ln(0.05) x (largest light count) x (tail lookups / all lookups) / 0.001 held-out
+    # tail lookups, about 60,000 here: the held-out light keys carry about half of that
     assert cli.main(["build", str(_small_toml(tmp_path, corpus_files, tmp_path / "store", target=0.001))]) == cli.EXIT_BAD_INPUT
     err = capsys.readouterr().err
     # the check belongs to the corpus stage, which never ended: stderr holds the reason alone
-    assert err.count("\n") == 1 and err.startswith("tamis: min_heldout: the corpus has ")
-    assert "held-out keys with lookup counts, worth an effective sample of" in err and "at least 2,995 draws" in err
+    assert err.count("\n") == 1 and err.startswith("tamis: min_heldout: the tail (keys looked up fewer than tau = 44 times) has ")
+    assert "held-out tail lookups" in err and "times as much log" in err
     assert _store_entries(tmp_path / "store") == []

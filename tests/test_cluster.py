@@ -29,7 +29,6 @@ from test_trees import assert_matches_lightgbm  # noqa: E402
 
 from tamis import publish  # noqa: E402
 from tamis.config import ComputeSettings  # noqa: E402
-from tamis.corpus import KeySet  # noqa: E402
 from tamis.demo import generate_demo_corpus  # noqa: E402
 from tamis.errors import BadInput  # noqa: E402
 from tamis.features import default_feature_spec, featurize  # noqa: E402
@@ -48,7 +47,7 @@ from tamis.package import package_artifact  # noqa: E402
 from tamis.query import region_of  # noqa: E402
 from tamis.regions import RegionSettings, plan_regions  # noqa: E402
 from tamis.trees import Forest, score_batch  # noqa: E402
-from tamis.verify import check_filter, path_sample  # noqa: E402
+from tamis.verify import Strata, every_path_answers, path_sample, verification  # noqa: E402
 
 TARGET_FPR = 0.02
 REGIONS = RegionSettings(segments=256)
@@ -167,10 +166,14 @@ def test_cluster_model_builds_a_filter_with_no_false_negative_and_its_target_rat
     path = tmp_path / "cluster.tamis"
     package_artifact(path, feature_spec=corpus["spec"], forest=forest, boundaries=plan.boundaries, region_filters=filters,
                      hash_seed=0x5EED, provenance={"built_at": "2026-12-01T00:00:00Z", "build_id": "cluster"})
-    heldout = KeySet(corpus["heldout"], np.ones(len(corpus["heldout"]), dtype=np.int64))
+    heldout = np.ones(len(corpus["heldout"]), dtype=np.int64)
     loaded = open_filter(path)
     assert loaded.contains_many(corpus["members"]).all()
-    checked = check_filter(loaded, corpus["members"], heldout, False, 0.95)
+    no_heavy = np.zeros(0, dtype=np.int64)
+    window = Strata(tau=44, lookups=3 * len(heldout), heavy_counts=no_heavy, tail_lookups=3 * len(heldout),
+                    tail_max_count=1, heldout_counts=heldout)
+    checked = verification(every_path_answers(loaded, corpus["members"]), every_path_answers(loaded, path_sample(corpus["heldout"])),
+                           np.zeros(0, dtype=bool), loaded.contains_many(corpus["heldout"]), window, 0.95)
     assert checked.false_negatives == 0 and checked.members_checked == len(corpus["members"])
     # the held-out rate is not above the target: the 99% Clopper-Pearson lower bound of the
     # measured false positives among distinct held-out keys is at or below it

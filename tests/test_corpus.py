@@ -343,7 +343,7 @@ def test_duplicates_and_conflicts_are_counted_in_the_stats(tmp_path):
     corpus = load_corpus(members, non, SETTINGS)
     assert corpus.stats == {"member_rows": 4, "member_duplicates": 1, "non_member_rows": 204,
                             "non_member_duplicates": 3, "conflicts": 1}
-    parts = (corpus.train, corpus.validation, corpus.heldout)
+    parts = (corpus.heavy, corpus.train, corpus.validation, corpus.heldout)
     counts = {k: int(c) for part in parts for k, c in zip(part.keys, part.counts)}
     assert counts[b"n1"] == 1 + 4 + 5 and b"both" not in counts and len(counts) == 200
 

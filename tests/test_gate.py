@@ -7,17 +7,16 @@ import numpy as np
 import pytest
 
 from tamis.config import GateSettings
-from tamis.corpus import KeySet
 from tamis.errors import BadInput
 from tamis.verify import (
     Baseline,
     Measurement,
     PathAgreement,
     PlainComparison,
+    Strata,
     Verification,
-    clopper_pearson_upper,
     gate_checks,
-    needed_heldout,
+    needed_heldout_lookups,
     publishes_plain,
     refusal_reasons,
     require_heldout,
@@ -28,8 +27,10 @@ RULES = ["false_negatives", "answer_paths", "fpr_upper", "max_artifact_bytes", "
 
 
 def verification(false_negatives: int = 0, fpr_upper: float = 0.008, differing: tuple[int, int] = (0, 0)) -> Verification:
-    held = Measurement(keys=50_000, lookups=50_000, false_positive_keys=300, false_positive_lookups=300,
-                       fpr=0.006, fpr_upper=fpr_upper, confidence=0.95, effective_sample=50_000.0)
+    held = Measurement(confidence=0.95, tau=44, total_lookups=200_000, heavy_keys=0, heavy_lookups=0,
+                       heavy_false_positive_keys=0, heavy_false_positive_lookups=0, keys=50_000, lookups=50_000,
+                       false_positive_keys=300, false_positive_lookups=300, tail_lookups=200_000, tail_fpr=0.006,
+                       tail_fpr_upper=fpr_upper, effective_sample=50_000.0, fpr=0.006, fpr_upper=fpr_upper)
     paths = PathAgreement(("numpy", "compiled", "single"), 10_000, 50_000, *differing)
     return Verification(false_negatives=false_negatives, members_checked=10_000, heldout=held, paths=paths)
 
@@ -113,51 +114,53 @@ def test_every_check_reports_plain_values():
 # ------------------------------------------------------------------------------- min_heldout
 
 
-def heldout(counts) -> KeySet:
-    counts = np.asarray(counts, dtype=np.int64)
-    return KeySet([b"k%d" % i for i in range(len(counts))], counts)
+def window(heldout_counts, tail_lookups=None, heavy=()) -> Strata:
+    counts = np.asarray(heldout_counts, dtype=np.int64)
+    heavy = np.asarray(heavy, dtype=np.int64)
+    tail = int(counts.sum() / 0.3) if tail_lookups is None else tail_lookups
+    return Strata(44, int(heavy.sum()) + tail, heavy, tail, int(counts.max()) if len(counts) else 0, counts)
 
 
 def test_without_counts_the_need_is_the_zero_failure_sample_size():
-    # (1 - F)^n <= 1 - c: 299 draws for 1% at 95% (the "rule of three", n about 3 / F; Hanley and
-    # Lippman-Hand, JAMA 1983); with one fewer, even no false positive leaves the bound above 1%
-    need = needed_heldout(TARGET, 0.95)
-    assert need == 299
-    assert clopper_pearson_upper(0, need, 0.95) <= TARGET < clopper_pearson_upper(0, need - 1, 0.95)
-    assert require_heldout(heldout(np.ones(need)), False, TARGET, GateSettings(), 0.3) == need
+    # no false positive among n held-out keys bounds the rate at -ln(1 - c) / n (the Poisson form
+    # of the "rule of three", about 3 / n; Hanley and Lippman-Hand, JAMA 1983): 300 keys for 1% at 95%
+    need = math.ceil(-math.log(0.05) / TARGET)
+    assert need == 300
+    assert needed_heldout_lookups(window(np.ones(need), 3 * need), TARGET, 0.95) == pytest.approx(-math.log(0.05) / TARGET)
+    require_heldout(window(np.ones(need), 3 * need), TARGET, GateSettings(), 0.3)
     with pytest.raises(BadInput) as refused:
-        require_heldout(heldout(np.ones(need - 1)), False, TARGET, GateSettings(), 0.3)
+        require_heldout(window(np.ones(need - 1), 3 * (need - 1)), TARGET, GateSettings(), 0.3)
     message = str(refused.value)
-    assert message.startswith("min_heldout: ")
-    assert "298 held-out keys" in message and "at least 299 keys" in message
-    assert "non-members" in message and "corpus.heldout_share (now 0.3)" in message and "target" in message
+    assert message.startswith("min_heldout: the tail (keys looked up fewer than tau = 44 times) has 299 held-out keys")
+    assert "at least 300 held-out tail lookups" in message and "times as much log" in message
+    assert "non-members" in message and "corpus.heldout_share (now 0.3)" in message and "corpus.heavy_count" in message
 
 
-def test_with_counts_the_effective_sample_decides():
-    # 1,000 keys, one looked up 1,000 times: Kish's n_eff = (sum w)^2 / sum w^2 = 1999^2 / (10^6 + 999)
-    counts = np.ones(1000)
-    counts[0] = 1000
-    n_eff = 1999**2 / (1000**2 + 999)
-    assert n_eff < needed_heldout(TARGET, 0.95) < 1000
-    with pytest.raises(BadInput) as refused:
-        require_heldout(heldout(counts), True, TARGET, GateSettings(), 0.25)
-    message = str(refused.value)
-    assert f"1,000 held-out keys with lookup counts, worth an effective sample of {n_eff:,.1f} draws" in message
-    assert "Kish" in message and "at least 299 draws" in message and "(now 0.25)" in message
-    assert require_heldout(heldout(counts), False, TARGET, GateSettings(), 0.25) == 1000  # as keys it is enough
+def test_with_counts_only_the_tail_is_asked():
+    # 1,000 held-out light keys of count 1 and one of 40 (weight 40 / share in the tail's estimate):
+    # the need grows with the largest light count, not with the heavy keys' lookups
+    light = np.concatenate([np.ones(1000), [40]])
+    tail = int(light.sum() / 0.3)
+    lean = window(light, tail)
+    need = needed_heldout_lookups(lean, TARGET, 0.95)
+    assert need == pytest.approx(-math.log(0.05) * 40 * tail / (TARGET * tail))
+    with pytest.raises(BadInput, match="largest light count is 40"):
+        require_heldout(lean, TARGET, GateSettings(), 0.25)
+    # a million lookups of heavy keys, answered exactly, make the tail a small share: enough now
+    require_heldout(window(light, tail, heavy=np.full(100, 10_000)), TARGET, GateSettings(), 0.25)
 
 
 def test_min_heldout_raises_the_floor_above_the_statistical_need():
     settings = GateSettings(min_heldout=5000)
-    with pytest.raises(BadInput, match="gate.min_heldout asks for 5,000"):
-        require_heldout(heldout(np.ones(4000)), False, TARGET, settings, 0.3)
-    assert require_heldout(heldout(np.ones(5000)), False, TARGET, settings, 0.3) == 5000
+    with pytest.raises(BadInput, match="gate.min_heldout asks for an effective sample of 5,000"):
+        require_heldout(window(np.ones(4000)), TARGET, settings, 0.3)
+    require_heldout(window(np.ones(5000)), TARGET, settings, 0.3)
 
 
 @pytest.mark.parametrize("target", [0.05, 0.01, 0.001, 1e-4])
-def test_the_need_is_the_published_closed_form(target):
-    # n = ceil(ln(1 - c) / ln(1 - F)), the zero-failure sample size (common practice in acceptance sampling)
-    assert needed_heldout(target, 0.95) == math.ceil(math.log(0.05) / math.log(1 - target))
+def test_the_need_is_the_zero_failure_closed_form(target):
+    # n = -ln(1 - c) / F held-out keys without counts (common practice in acceptance sampling)
+    assert needed_heldout_lookups(window(np.ones(10)), target, 0.95) == pytest.approx(-math.log(0.05) / target)
 
 
 # --- model_pays: the learned artifact against the plain filter it would replace -------------------

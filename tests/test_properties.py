@@ -14,12 +14,11 @@ from hypothesis import strategies as st
 from scipy import optimize, stats
 
 from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
-from tamis.corpus import KeySet
 from tamis.features import default_feature_spec, featurize
 from tamis.loader import open_filter
 from tamis.query import available_paths, region_of
 from tamis.trees import score_batch
-from tamis.verify import clopper_pearson_upper, measure_fpr
+from tamis.verify import gamma_upper, rate_upper
 from tamis_testing import HASH_SEED, build_artifact
 
 ALPHABETS = {
@@ -121,52 +120,40 @@ SEEDS = 1000
 SIGMAS = 4.0
 
 
-def clopper_pearson_by_root(x: int, n: int, confidence: float) -> float:
-    """The one-sided Clopper-Pearson upper bound from its definition: the rate p at which seeing x
-    or fewer in n has probability 1 - confidence (C. J. Clopper and E. S. Pearson, Biometrika
-    26(4), 1934), found by root-finding on scipy's binomial distribution."""
-    if x >= n:
-        return 1.0
-    return optimize.brentq(lambda p: stats.binom.cdf(x, n, p) - (1 - confidence), 1e-15, 1 - 1e-15, xtol=1e-14)
+def poisson_upper_by_root(x: int, confidence: float) -> float:
+    """The one-sided upper limit of a Poisson mean from its definition: the mean at which seeing x
+    or fewer has probability 1 - confidence (F. Garwood, Biometrika 1936), by root-finding on
+    scipy's Poisson distribution."""
+    return optimize.brentq(lambda mu: stats.poisson.cdf(x, mu) - (1 - confidence), 1e-12, 10.0 * x + 50, xtol=1e-12)
+
+
+def key_rate_upper(false_positives, heldout: int, confidence: float = CONFIDENCE):
+    """The build's bound (`rate_upper`) on a corpus without counts: n held-out keys of 3n."""
+    return rate_upper(3 * heldout, 0, false_positives, false_positives, 1 / 3, 1, confidence)
 
 
 def exact_miss_probability(n: int, p: float, confidence: float) -> float:
     """P(upper bound < p) when the count is Binomial(n, p): the count must be at most the largest x
     whose bound is below p (the bound grows with x)."""
     x = 0
-    while x <= n and clopper_pearson_upper(x, n, confidence) < p:
+    while x <= n and key_rate_upper(x, n, confidence) < p:
         x += 1
     return float(stats.binom.cdf(x - 1, n, p)) if x else 0.0
 
 
-@pytest.mark.parametrize("x, n", [(0, 100), (3, 100), (17, 2000), (250, 1000)])
-def test_the_bound_is_the_clopper_pearson_root(x, n):
-    assert clopper_pearson_upper(x, n, CONFIDENCE) == pytest.approx(clopper_pearson_by_root(x, n, CONFIDENCE), rel=1e-9)
+@pytest.mark.parametrize("x", [0, 3, 17, 250])
+def test_the_bound_is_the_poisson_root(x):
+    assert gamma_upper(x, x, 1.0, CONFIDENCE) == pytest.approx(poisson_upper_by_root(x, CONFIDENCE), rel=1e-8)
 
 
 @pytest.mark.parametrize("p", [0.002, 0.01, 0.05, 0.2])
 def test_the_held_out_bound_misses_the_true_rate_no_more_often_than_its_confidence_allows(p):
     n = 2000
     rng = np.random.default_rng(int(p * 1e6))
-    heldout = KeySet([b""] * n, np.ones(n, dtype=np.int64))
-    misses = sum(measure_fpr(rng.random(n) < p, heldout, False, CONFIDENCE).fpr_upper < p for _ in range(SEEDS))
+    misses = int(np.sum(key_rate_upper(rng.binomial(n, p, SEEDS), n) < p))
     q = exact_miss_probability(n, p, CONFIDENCE)
-    assert q <= 1 - CONFIDENCE, "Clopper-Pearson guarantees at most 1 - confidence"
+    assert q <= 1 - CONFIDENCE, "the Poisson bound on a binomial count is at least as wide as Clopper-Pearson's"
     assert abs(misses - SEEDS * q) <= SIGMAS * math.sqrt(SEEDS * q * (1 - q)) + 1, (misses, SEEDS * q)
-
-
-def test_the_weighted_bound_on_the_effective_sample_covers_lookup_rates():
-    # Heavy-tailed lookup counts (Zipf, a = 2, capped as in the demo); each key is a false positive
-    # with probability p whatever its count, so the true rate by lookups is p.
-    n, p = 2000, 0.01
-    rng = np.random.default_rng(11)
-    misses = 0
-    for _ in range(SEEDS):
-        counts = np.minimum(rng.zipf(2.0, n), 1000)
-        heldout = KeySet([b""] * n, counts)
-        misses += measure_fpr(rng.random(n) < p, heldout, True, CONFIDENCE).fpr_upper < p
-    alpha = 1 - CONFIDENCE
-    assert misses <= SEEDS * alpha + SIGMAS * math.sqrt(SEEDS * alpha * (1 - alpha))
 
 
 def test_the_bound_covers_a_real_bloom_filters_rate():
@@ -180,8 +167,7 @@ def test_the_bound_covers_a_real_bloom_filters_rate():
     answers = bloom.query_hashes(hash_keys(fresh, HASH_SEED))
     true_rate = answers[:1_000_000].mean()
     samples = answers[1_000_000:].reshape(300, 2000)
-    heldout = KeySet([b""] * 2000, np.ones(2000, dtype=np.int64))
-    misses = sum(measure_fpr(sample, heldout, False, CONFIDENCE).fpr_upper < true_rate for sample in samples)
+    misses = int(np.sum(key_rate_upper(samples.sum(axis=1), 2000) < true_rate))
     alpha = 1 - CONFIDENCE
     assert 0.01 < true_rate < 0.03
     assert misses <= 300 * alpha + SIGMAS * math.sqrt(300 * alpha * (1 - alpha))

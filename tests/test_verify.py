@@ -10,16 +10,18 @@ from scipy import stats
 
 from golden_build import write_fixed_corpus
 from tamis.config import GateSettings
-from tamis.corpus import KeySet
+from tamis.corpus import Corpus, KeySet
 from tamis.loader import MembershipFilter, answer_paths, open_filter
 from tamis.verify import (
+    Strata,
     aim_fpr,
+    best_of_quantile,
     check_filter,
-    clopper_pearson_upper,
     effective_sample_size,
+    gamma_upper,
     gate_checks,
-    measure_fpr,
-    needed_heldout,
+    measure,
+    rate_upper,
     refusal_reasons,
 )
 
@@ -35,8 +37,15 @@ def reference(tmp_path_factory):
     return {"members": members, "heldout": KeySet(others, np.ones(len(others), dtype=np.int64))}
 
 
+def _corpus(members, heldout: KeySet) -> Corpus:
+    """A corpus without counts whose non-members are all held out."""
+    none = KeySet([], np.zeros(0, dtype=np.int64))
+    return Corpus(members=members, heavy=none, train=none, validation=none, heldout=heldout, tau=44,
+                  has_counts=False, stats={})
+
+
 def _verdict(members, heldout) -> tuple:
-    checked = check_filter(open_filter(REFERENCE_ARTIFACT), members, heldout, False, 0.95)
+    checked = check_filter(open_filter(REFERENCE_ARTIFACT), _corpus(members, heldout), 0.95)
     reasons = refusal_reasons(gate_checks(checked, target=0.5, total_bytes=1, members=len(members),
                                           settings=GateSettings(), baseline=None))
     return checked, reasons
@@ -72,21 +81,42 @@ def test_paths_that_differ_on_a_non_member_are_refused(reference, monkeypatch):
     assert len(reasons) == 1 and reasons[0].startswith("answer_paths: 0 members and 1 held-out keys get different answers")
 
 
-@pytest.mark.parametrize("x, n", [(0, 50), (3, 1000), (120, 10000), (999, 1000)])
-def test_clopper_pearson_upper_matches_scipy_exact_interval(x, n):
-    # scipy's exact (Clopper-Pearson) two-sided interval at 90% has the one-sided 95% bound as its
-    # upper end (scipy.stats.binomtest, SciPy 1.7+; Clopper and Pearson, Biometrika 1934)
-    reference = stats.binomtest(x, n).proportion_ci(confidence_level=0.90, method="exact").high
-    assert clopper_pearson_upper(x, n, 0.95) == pytest.approx(reference, rel=1e-9)
+def strata(heavy=(), heldout=(1,) * 1000, tail_lookups=None, tail_max=None, tau=44) -> Strata:
+    heavy, heldout = np.asarray(heavy, dtype=np.int64), np.asarray(heldout, dtype=np.int64)
+    tail = int(heldout.sum() / 0.3) if tail_lookups is None else tail_lookups
+    return Strata(
+        tau=tau,
+        lookups=int(heavy.sum()) + tail,
+        heavy_counts=heavy,
+        tail_lookups=tail,
+        tail_max_count=int(heldout.max()) if tail_max is None else tail_max,
+        heldout_counts=heldout,
+    )
 
 
-def test_zero_successes_follow_the_closed_form():
-    # with x = 0 the bound solves (1 - p)^n = 1 - c, i.e. p = 1 - (1 - c)^(1/n); about 3/n at 95%
-    # ("rule of three", Hanley and Lippman-Hand, JAMA 1983)
-    n = 3000
-    assert clopper_pearson_upper(0, n, 0.95) == pytest.approx(1 - 0.05 ** (1 / n), rel=1e-9)
-    assert clopper_pearson_upper(0, n, 0.95) == pytest.approx(3 / n, rel=0.01)
-    assert needed_heldout(0.01, 0.95) == math.ceil(math.log(0.05) / math.log(0.99)) == 299
+@pytest.mark.parametrize("x", [0, 1, 7, 250])
+def test_unit_weights_give_the_exact_poisson_bound(x):
+    # Garwood's exact upper limit for a Poisson mean: chi2_{2(x+1)} quantile / 2 (F. Garwood,
+    # Biometrika 1936; common practice)
+    assert gamma_upper(x, x, 1.0, 0.95) == pytest.approx(stats.chi2.ppf(0.95, 2 * (x + 1)) / 2, rel=1e-9)
+
+
+@pytest.mark.parametrize("x, w", [(0, 5.0), (12, 3.0), (400, 40.0)])
+def test_one_weight_scales_the_poisson_bound(x, w):
+    # x events of weight w each: total w x, variance estimate w^2 x, largest weight w; the gamma
+    # limit is then w times the exact Poisson limit (Fay and Feuer, Statistics in Medicine 1997)
+    assert gamma_upper(w * x, w * w * x, w, 0.95) == pytest.approx(w * stats.chi2.ppf(0.95, 2 * (x + 1)) / 2, rel=1e-9)
+
+
+def test_without_counts_the_bound_is_close_to_clopper_pearson():
+    # one lookup a key, 300 false positives among 30,000 held-out keys of 100,000: the Poisson
+    # bound on the rate by keys sits just above the exact binomial one (C. J. Clopper and E. S.
+    # Pearson, Biometrika 1934), as the Poisson law is wider than the binomial
+    upper = rate_upper(100_000, 0, 300, 300, 0.3, 1, 0.95)
+    exact = stats.beta.ppf(0.95, 301, 30_000 - 300)
+    assert exact < upper < exact * 1.01
+    # no false positive: the "rule of three", about 3 / n (Hanley and Lippman-Hand, JAMA 1983)
+    assert rate_upper(100_000, 0, 0, 0, 0.3, 1, 0.95) == pytest.approx(-math.log(0.05) / 30_000, rel=1e-9)
 
 
 def test_effective_sample_size_of_equal_and_skewed_weights():
@@ -96,30 +126,53 @@ def test_effective_sample_size_of_equal_and_skewed_weights():
     assert effective_sample_size(w) == pytest.approx(199**2 / 10099)
 
 
-def test_measure_fpr_by_keys_and_by_lookups():
-    heldout = KeySet([b"a", b"b", b"c", b"d"], np.array([10, 1, 1, 8]))
-    answers = np.array([True, False, False, False])
-    by_keys = measure_fpr(answers, heldout, weighted=False, confidence=0.95)
-    assert by_keys.fpr == 0.25 and by_keys.false_positive_keys == 1
-    by_lookups = measure_fpr(answers, heldout, weighted=True, confidence=0.95)
-    assert by_lookups.fpr == pytest.approx(10 / 20) and by_lookups.false_positive_lookups == 10
-    assert by_lookups.fpr_upper > by_lookups.fpr
+def test_heavy_keys_count_exactly_and_the_tail_is_scaled_by_its_held_out_share():
+    window = strata(heavy=[5000, 100, 60], heldout=[1, 2, 3, 4] * 250, tail_lookups=10_000)
+    heavy_answers = np.array([False, True, False])
+    heldout_answers = np.zeros(1000, dtype=bool)
+    heldout_answers[:10] = True  # counts 1, 2, 3, 4, 1, 2, 3, 4, 1, 2: 23 lookups
+    found = measure(heavy_answers, heldout_answers, window, 0.95)
+    assert found.heavy_false_positive_lookups == 100 and found.false_positive_lookups == 23
+    # held-out share of the tail's lookups: 2,500 / 10,000; the tail's false positives are 23 / 0.25
+    assert found.fpr == pytest.approx((100 + 23 / 0.25) / (5160 + 10_000))
+    assert found.tail_fpr == pytest.approx(23 / 2500)
+    assert found.fpr < found.fpr_upper < 1 and found.tail_fpr < found.tail_fpr_upper
+    # a heavy key that answers maybe costs its whole weight
+    hot = measure(np.array([True, False, False]), heldout_answers, window, 0.95)
+    assert hot.fpr == pytest.approx((5000 + 92) / 15_160) and hot.fpr_upper > found.fpr_upper
 
 
-def test_aim_leaves_room_for_the_bound_and_the_noise():
-    n = 300_000
-    aim = aim_fpr(0.01, n, math.inf, 0.95, 2.0)  # a plan known exactly: held-out noise only
-    unlucky = aim * n + 2.0 * math.sqrt(aim * (1 - aim) * n)
-    assert clopper_pearson_upper(unlucky, n, 0.95) == pytest.approx(0.01, rel=1e-6)
+def test_the_aim_leaves_room_for_the_bound_and_the_noise():
+    window = strata(heldout=np.ones(300_000))
+    plan_known = np.ones(10**7)  # a plan estimated on a vast validation part: hardly any plan error
+    aim = aim_fpr(0.01, window, plan_known, 0.95, 2.0)
+    assert 0.009 < aim < 0.01
     # the normal approximation of the same margin (1.645 + 2 standard errors) lands close by
+    n = 300_000
     z = stats.norm.ppf(0.95) + 2.0
-    assert aim + z * math.sqrt(aim * (1 - aim) / n) == pytest.approx(0.01, rel=0.01)
-    assert aim_fpr(0.01, 1_000, math.inf, 0.95, 2.0) < aim  # fewer held-out keys: aim lower
-    # a plan estimated on as many validation draws doubles the variance of the count (the
-    # variance of a difference of two independent binomial estimates adds; common practice)
-    planned = aim_fpr(0.01, n, n, 0.95, 2.0)
-    unlucky = planned * n + 2.0 * math.sqrt(planned * (1 - planned) * 2 * n)
-    assert planned < aim and clopper_pearson_upper(unlucky, n, 0.95) == pytest.approx(0.01, rel=1e-6)
+    assert aim + z * math.sqrt(aim / n) == pytest.approx(0.01, rel=0.01)
+    # fewer held-out keys, or a plan estimated on fewer keys: a lower aim
+    assert aim_fpr(0.01, strata(heldout=np.ones(3000)), plan_known, 0.95, 2.0) < aim
+    assert aim_fpr(0.01, window, np.ones(300_000), 0.95, 2.0) < aim
+
+
+def test_heavy_keys_lift_the_aim_that_sampling_them_would_sink():
+    # the same lookups, once with 50 keys of 1,000 lookups held out among the tail, once as a
+    # take-all stratum: the aim rises when they are answered exactly and the build picks seeds
+    rng = np.random.default_rng(3)
+    light = rng.integers(1, 10, 100_000)
+    sampled = strata(heldout=np.concatenate([light, np.full(15, 1000)]))
+    validation = np.concatenate([light, np.full(15, 1000)])
+    exact = strata(heavy=np.full(50, 1000), heldout=light, tail_lookups=sampled.tail_lookups - 50_000)
+    assert aim_fpr(0.01, exact, light, 0.95, 2.0, seed_candidates=8) > aim_fpr(0.01, sampled, validation, 0.95, 2.0)
+
+
+def test_the_best_of_several_seeds_needs_less_room_for_luck():
+    assert best_of_quantile(2.0, 1) == pytest.approx(2.0)
+    # the least of m draws exceeds x with chance P(one exceeds x)^m
+    x = best_of_quantile(2.0, 2)
+    assert stats.norm.sf(x) ** 2 == pytest.approx(stats.norm.sf(2.0), rel=1e-9)
+    assert best_of_quantile(2.0, 8) == 0.0
 
 
 def test_the_aim_covers_the_error_of_a_plan_estimated_on_validation_draws():
@@ -128,24 +181,16 @@ def test_the_aim_covers_the_error_of_a_plan_estimated_on_validation_draws():
     samples, the gate's bound passes in at least ~97.7% of builds (2 sigmas), as promised."""
     rng = np.random.default_rng(5)
     n, target, builds = 50_000, 0.01, 4_000
+    window = strata(heldout=np.ones(n), tail_lookups=3 * n)
 
     def pass_rate(aim: float) -> float:
         estimate = rng.binomial(n, aim, builds) / n  # the validation estimate of the plan's true rate
         true_rate = aim * aim / estimate  # the plan scales its rate so that the estimate meets the aim
         measured = rng.binomial(n, np.minimum(true_rate, 1.0))
-        return float(np.mean([clopper_pearson_upper(x, n, 0.95) <= target for x in measured]))
+        upper = rate_upper(window.lookups, 0, measured, measured, 1 / 3, 1, 0.95)
+        return float(np.mean(upper <= target))
 
-    passed = pass_rate(aim_fpr(target, n, n, 0.95, 2.0))
+    passed = pass_rate(aim_fpr(target, window, np.ones(n), 0.95, 2.0))
     assert passed >= 0.97
     # planning for the held-out noise alone passes visibly less often
-    assert pass_rate(aim_fpr(target, n, math.inf, 0.95, 2.0)) < passed - 0.03
-
-
-def test_a_rate_on_target_passes_the_bound_at_about_the_stated_confidence():
-    """Simulated coverage: with the true rate p, the 95% upper bound falls below p about 5% of the
-    time or less (Clopper-Pearson is conservative)."""
-    rng = np.random.default_rng(5)
-    n, p = 20_000, 0.01
-    misses = sum(clopper_pearson_upper(x, n, 0.95) < p for x in rng.binomial(n, p, size=2000))
-    # at most 5%, plus a 4-sigma binomial allowance on 2000 trials
-    assert misses <= 2000 * 0.05 + 4 * math.sqrt(2000 * 0.05 * 0.95)
+    assert pass_rate(aim_fpr(target, window, np.ones(10**7), 0.95, 2.0)) < passed - 0.03
