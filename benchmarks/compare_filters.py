@@ -337,7 +337,7 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
         verify.require_heldout(strata, target, config.gate, config.corpus.heldout_share)
     except BadInput:
         return TargetResult(prepared.name, target, refused=refusal(prepared, target))
-    aim = verify.aim_fpr(target, strata, corpus.validation.counts, config.gate.confidence, config.gate.aim_sigmas)
+    aim = verify.aim_fpr(target, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas)
     started = time.perf_counter()
     choice = train_model.fn(corpus, prepared.train, prepared.features, aim, config, quiet)
     plan, scores = choose_regions(run_in_process, corpus, prepared.features, choice.forest, aim, config)

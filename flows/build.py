@@ -26,6 +26,7 @@ import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, replace
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -36,6 +37,7 @@ from prefect.utilities.annotations import quote
 
 from tamis import corpus as corpus_stage
 from tamis import publish, report, report_page, verify
+from tamis.bloom import sized_fpr
 from tamis.booster import compile_trees
 from tamis.config import BuildConfig, require_paths
 from tamis.drift import Drift, measure_drift
@@ -51,6 +53,9 @@ from tamis.query import region_of
 from tamis.regions import RegionPlan, plan_regions
 from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
 from tamis.trees import Forest, score_batch
+
+# The largest rate the corrected plan may be made for (plan_regions takes rates below 1).
+MAX_PLANNED_RATE = 0.5
 
 STAGES = ("corpus", "features", "model", "regions", "filters", "plain", "package", "verify", "drift", "report", "publish")
 
@@ -178,8 +183,15 @@ def answer_chunk(chunk: Chunk, path: Path, every_path: bool) -> np.ndarray:
 
 
 def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: corpus_stage.KeySet, spec: dict, config: BuildConfig) -> dict[str, np.ndarray]:
-    """Feature matrices of all members, the light training sample, the validation keys and the heavy keys."""
-    parts = {"members": corpus.members, "train": train.keys, "validation": corpus.validation.keys, "heavy": corpus.heavy.keys}
+    """Feature matrices of all members, the light training sample, the validation and check keys
+    and the heavy keys."""
+    parts = {
+        "members": corpus.members,
+        "train": train.keys,
+        "validation": corpus.validation.keys,
+        "check": corpus.check.keys,
+        "heavy": corpus.heavy.keys,
+    }
     return map_parts(run_chunks, featurize_chunk, parts, config.compute.chunk_keys, spec)
 
 
@@ -220,13 +232,27 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
 
 
 def choose_regions(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, aim: float, config: BuildConfig):
-    """Scores of the members, the validation keys and the heavy keys, and the region plan they lead
-    to (the heavy keys with their exact scores and weights)."""
-    parts = {"members": X["members"], "validation": X["validation"], "heavy": X["heavy"]}
+    """Scores of the members, the validation, check and heavy keys, and the region plan they lead to.
+
+    The plan is fitted to the validation keys and the heavy keys (exact scores and weights). Fitted
+    shares flatter the plan that was chosen on them, so its rate is then estimated on the check
+    keys with each filter's rate as it will be sized (`verify.planned_rate`), and the plan is made
+    once more for aim x aim / that rate: what it was fitted to is scaled by the error measured.
+    """
+    parts = {"members": X["members"], "validation": X["validation"], "check": X["check"], "heavy": X["heavy"]}
     scores = map_parts(run_chunks, score_chunk, parts, config.compute.chunk_keys, forest)
     nonmember_scores = np.concatenate([scores["validation"], scores["heavy"]])
     weights = corpus_stage.plan_weights(corpus)
-    plan = plan_regions(scores["members"], nonmember_scores, weights, aim, config.regions)
+
+    def plan_for(rate: float):
+        plan = plan_regions(scores["members"], nonmember_scores, weights, rate, config.regions)
+        sized = [sized_fpr(int(n), float(f)) for n, f in zip(plan.member_counts, plan.fprs)]
+        at = partial(region_of, boundaries=plan.boundaries)
+        estimate = verify.planned_rate(sized, at(scores["heavy"]), at(scores["check"]), verify.strata_of(corpus), corpus.check.counts)
+        return plan, estimate
+
+    first, estimate = plan_for(aim)
+    plan = plan_for(min(aim * aim / estimate, MAX_PLANNED_RATE))[0] if estimate > 0 else first
     return plan, ScoreSample(scores["members"], nonmember_scores, weights)
 
 
@@ -408,7 +434,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
         strata = verify.strata_of(corpus)
         verify.require_heldout(strata, config.target.fpr, config.gate, config.corpus.heldout_share)
     provenance = build_provenance(config, corpus)
-    aim = verify.aim_fpr(config.target.fpr, strata, corpus.validation.counts, config.gate.confidence, config.gate.aim_sigmas)
+    aim = verify.aim_fpr(config.target.fpr, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas)
     spec = default_feature_spec()
     train = training_keys(corpus, config)
     with stages.stage("features"):

@@ -62,6 +62,19 @@ def bloom_fpr(m: int, n: int, k: int) -> float:
     return (1.0 - math.exp(-k * n / m)) ** k
 
 
+def sized_fpr(n: int, fpr: float) -> float:
+    """The formula rate of the filter `bloom_bits` and `bloom_hashes` size for n keys at budget fpr.
+
+    Whole bits and a whole number of probes put it a little above the budget: 1.0039% for 1%,
+    1.0054% at 5%, 1.0076% at 1.1% (k = 7 where 6.5 would be optimal). Budgets of 1 or more and
+    empty filters keep their budget (a "yes" region answers every key, a "no" region none).
+    """
+    if n == 0 or fpr >= 1.0:
+        return min(fpr, 1.0)
+    bits = bloom_bits(n, fpr)
+    return bloom_fpr(bits, n, bloom_hashes(bits, n))
+
+
 def lower_bound_bits(n: int, fpr: float) -> float:
     """Information-theoretic minimum n log2(1/f) bits for any filter of n keys at rate f."""
     return 0.0 if fpr >= 1.0 else n * math.log2(1.0 / fpr)

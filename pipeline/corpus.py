@@ -121,6 +121,7 @@ class Corpus:
     heavy: KeySet
     train: KeySet
     validation: KeySet
+    check: KeySet
     heldout: KeySet
     tau: int
     has_counts: bool
@@ -129,11 +130,16 @@ class Corpus:
     @property
     def lookups(self) -> int:
         """All non-member lookups of the window."""
-        return sum(part.lookups for part in (self.heavy, self.train, self.validation, self.heldout))
+        return sum(part.lookups for part in self.non_member_parts)
 
     @property
     def non_members(self) -> int:
-        return sum(len(part.keys) for part in (self.heavy, self.train, self.validation, self.heldout))
+        return sum(len(part.keys) for part in self.non_member_parts)
+
+    @property
+    def non_member_parts(self) -> tuple[KeySet, ...]:
+        """Every non-member part: the heavy keys, then the light ones by part."""
+        return (self.heavy, self.train, self.validation, self.check, self.heldout)
 
 
 def plan_weights(corpus: Corpus) -> np.ndarray:
@@ -643,15 +649,18 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
     heavy = non_counts >= tau
     bucket = split_buckets(non_keys, settings.split_seed)
     heldout_end = round(settings.heldout_share * _SPLIT_BUCKETS)
+    check_end = heldout_end + round(settings.validation_share * _SPLIT_BUCKETS / 2)
     validation_end = heldout_end + round(settings.validation_share * _SPLIT_BUCKETS)
+    light = ~heavy
     parts = {
         "heavy": _subset(non_keys, non_counts, heavy),
-        "heldout": _subset(non_keys, non_counts, ~heavy & (bucket < heldout_end)),
-        "validation": _subset(non_keys, non_counts, ~heavy & (bucket >= heldout_end) & (bucket < validation_end)),
-        "train": _subset(non_keys, non_counts, ~heavy & (bucket >= validation_end)),
+        "heldout": _subset(non_keys, non_counts, light & (bucket < heldout_end)),
+        "check": _subset(non_keys, non_counts, light & (bucket >= heldout_end) & (bucket < check_end)),
+        "validation": _subset(non_keys, non_counts, light & (bucket >= check_end) & (bucket < validation_end)),
+        "train": _subset(non_keys, non_counts, light & (bucket >= validation_end)),
     }
     # the held-out part's size is judged against the target by the flow; the model needs the others
-    for name in ("train", "validation"):
+    for name in ("train", "validation", "check"):
         if not parts[name].keys:
             raise BadInput(
                 f"{non_members_path}: the hash split of its {len(non_keys):,} distinct light non-members (looked up "

@@ -30,7 +30,7 @@ def corpus_digest(corpus: Corpus) -> str:
     """xxh3-128 of every key and count, members first, then each non-member part in order."""
     digest = xxhash.xxh3_128()
     digest.update(b"\n".join(corpus.members))
-    for part in (corpus.heavy, corpus.train, corpus.validation, corpus.heldout):
+    for part in corpus.non_member_parts:
         digest.update(b"\x00" + b"\n".join(part.keys))
         digest.update(part.counts.astype("<i8").tobytes())
     return digest.hexdigest()

@@ -84,7 +84,7 @@ def build_report(
             "non_members": corpus.non_members,
             "lookups": corpus.lookups,
             "has_counts": corpus.has_counts,
-            "split": {part: len(getattr(corpus, part).keys) for part in ("heavy", "train", "validation", "heldout")},
+            "split": {part: len(getattr(corpus, part).keys) for part in ("heavy", "train", "validation", "check", "heldout")},
             **corpus.stats,
         },
         "heldout": verification.heldout.as_report(),

@@ -120,7 +120,7 @@ class Strata:
 
 
 def strata_of(corpus: Corpus) -> Strata:
-    light = (corpus.train.counts, corpus.validation.counts, corpus.heldout.counts)
+    light = [part.counts for part in corpus.non_member_parts[1:]]
     return Strata(
         tau=corpus.tau,
         lookups=corpus.lookups,
@@ -226,6 +226,17 @@ def measure(heavy_answers: np.ndarray, heldout_answers: np.ndarray, strata: Stra
     )
 
 
+def planned_rate(region_rates, heavy_regions, check_regions, strata: Strata, check_counts: np.ndarray) -> float:
+    """The rate a plan will have, estimated on keys it was not fitted on: every heavy key at the
+    rate of its region, the tail at the lookup-weighted rate of the check keys (validation keys
+    that took no part in the model's choice, the boundaries or the budgets)."""
+    rates = np.asarray(region_rates, dtype=np.float64)
+    heavy = float(np.dot(strata.heavy_counts, rates[heavy_regions]))
+    checked = check_counts.sum()
+    tail = strata.tail_lookups * float(np.dot(check_counts, rates[check_regions])) / checked if checked else 0.0
+    return (heavy + tail) / strata.lookups
+
+
 def aim_fpr(
     target: float,
     strata: Strata,
@@ -239,8 +250,8 @@ def aim_fpr(
     Planned at rate f (the same chance for every key), the gate sees a total of about f L
     false-positive lookups, with variance f V_gate (heavy counts' Poisson noise plus the held-out
     tail's weights: V_gate = heavy lookups + sum of held-out c^2 / s^2). The plan's own rate is
-    itself uncertain: the tail's share is estimated on validation keys (f times sum of their c^2 /
-    s_val^2), and each heavy key is a false positive by the luck of hashing (f (1 - f) sum of heavy
+    itself uncertain: the tail's share is estimated on `validation_counts`, the keys that pin the
+    plan's rate (the check keys, `planned_rate`; f times sum of their c^2 / s_val^2), and each heavy key is a false positive by the luck of hashing (f (1 - f) sum of heavy
     c^2). In all but the unluckiest builds the total stays below f L + s sqrt(those variances), where
     s = `aim_sigmas` for the sampling terms; when the build picks each region's hash seed among
     `seed_candidates` to spare the heavy keys, the luck term takes the quantile of the best of them

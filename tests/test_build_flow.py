@@ -72,12 +72,12 @@ def test_long_stages_report_their_advance(published):
     corpus = outcome.report["corpus"]
     features = steps["features"]
     split = corpus["split"]
-    assert features[-1].done == features[-1].total == corpus["members"] + split["train"] + split["validation"] + split["heavy"]
+    assert features[-1].done == features[-1].total == corpus["members"] + split["train"] + split["validation"] + split["check"] + split["heavy"]
     assert [e.done for e in features] == sorted(e.done for e in features)
     assert steps["filters"][-1].done == steps["filters"][-1].total == corpus["members"]
-    # one step a chunk: the members, training, validation and heavy keys are chunked part by part
+    # one step a chunk: the members, training, validation, check and heavy keys are chunked part by part
     assert len(steps["filters"]) == math.ceil(corpus["members"] / CHUNK_KEYS)
-    parts = (corpus["members"], split["train"], split["validation"], split["heavy"])
+    parts = (corpus["members"], split["train"], split["validation"], split["check"], split["heavy"])
     assert len(features) == sum(math.ceil(keys / CHUNK_KEYS) for keys in parts)
     # one step per priced checkpoint: the model report lists them all
     assert [e.done for e in steps["model"]] == list(range(1, len(outcome.report["model"]["candidates"]) + 1))

@@ -212,11 +212,14 @@ def test_split_is_stable_disjoint_and_near_its_shares(tmp_path):
     settings = CorpusSettings(validation_share=0.3, heldout_share=0.2)
     first, second = load_corpus(members, non, settings), load_corpus(members, non, settings)
     assert first.heldout.keys == second.heldout.keys
-    parts = [set(first.train.keys), set(first.validation.keys), set(first.heldout.keys)]
+    parts = [set(part.keys) for part in first.non_member_parts]
     assert sum(map(len, parts)) == 20000 and len(set.union(*parts)) == 20000
-    # each key lands in the held-out part with probability 0.2: a 4-sigma binomial band
-    sigma = (20000 * 0.2 * 0.8) ** 0.5
-    assert abs(len(first.heldout.keys) - 4000) < 4 * sigma
+    assert not first.heavy.keys  # no counts: every key is light
+    # each key lands in the held-out part with probability 0.2, and in the validation and check
+    # parts with 0.15 each: 4-sigma binomial bands
+    for part, share in ((first.heldout, 0.2), (first.validation, 0.15), (first.check, 0.15)):
+        sigma = (20000 * share * (1 - share)) ** 0.5
+        assert abs(len(part.keys) - 20000 * share) < 4 * sigma
     # the split of a key does not depend on the other keys of the corpus
     assert split_buckets([b"player7"], settings.split_seed)[0] == split_buckets([b"x", b"player7"], settings.split_seed)[1]
 
@@ -343,7 +346,7 @@ def test_duplicates_and_conflicts_are_counted_in_the_stats(tmp_path):
     corpus = load_corpus(members, non, SETTINGS)
     assert corpus.stats == {"member_rows": 4, "member_duplicates": 1, "non_member_rows": 204,
                             "non_member_duplicates": 3, "conflicts": 1}
-    parts = (corpus.heavy, corpus.train, corpus.validation, corpus.heldout)
+    parts = corpus.non_member_parts
     counts = {k: int(c) for part in parts for k, c in zip(part.keys, part.counts)}
     assert counts[b"n1"] == 1 + 4 + 5 and b"both" not in counts and len(counts) == 200
 

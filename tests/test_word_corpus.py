@@ -67,7 +67,7 @@ def test_the_packaged_lists_make_a_corpus_the_corpus_stage_reads(packaged):
     assert sorted(corpus.members) == sorted(w.encode("utf-8") for w in english)
     assert corpus.stats["conflicts"] == 0 and corpus.stats["non_member_duplicates"] == 0
     foreign = {w: c for w, c in basque.items() if w not in english}
-    parts = (corpus.heavy, corpus.train, corpus.validation, corpus.heldout)
+    parts = corpus.non_member_parts
     assert sum(len(part.keys) for part in parts) == len(foreign)
     assert all(count >= corpus.tau for count in corpus.heavy.counts) and len(corpus.heavy.keys) > 0
     assert sum(part.lookups for part in parts) == sum(foreign.values())
