@@ -188,7 +188,7 @@ def test_conflicting_keys_stay_members_or_raise(tmp_path):
     non = tmp_path / "n.csv"
     pl.DataFrame({"key": [f"n{i}" for i in range(100)] + ["both"], "count": [1] * 101}).write_csv(non)
     corpus = load_corpus(members, non, SETTINGS)
-    everything = corpus.train.keys + corpus.validation.keys + corpus.heldout.keys
+    everything = [key for part in corpus.non_member_parts for key in part.keys]
     assert b"both" in corpus.members and b"both" not in everything
     assert corpus.stats["conflicts"] == 1 and len(everything) == 100
     with pytest.raises(BadInput, match="both member and non-member"):

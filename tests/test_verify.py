@@ -40,7 +40,7 @@ def reference(tmp_path_factory):
 def _corpus(members, heldout: KeySet) -> Corpus:
     """A corpus without counts whose non-members are all held out."""
     none = KeySet([], np.zeros(0, dtype=np.int64))
-    return Corpus(members=members, heavy=none, train=none, validation=none, heldout=heldout, tau=44,
+    return Corpus(members=members, heavy=none, train=none, validation=none, check=none, heldout=heldout, tau=44,
                   has_counts=False, stats={})
 
 
