@@ -216,12 +216,14 @@ def test_a_build_on_the_cluster_keeps_the_invariants_and_the_bytes_of_a_local_bu
     def chunks(*parts: int) -> int:
         return sum(math.ceil(keys / CHUNK) for keys in parts)
 
-    assert ran["featurize_chunk"] == chunks(member_count, trained, split["validation"])
-    assert ran["score_chunk"] == chunks(member_count, split["validation"])
+    # the training rows are the light training sample and every heavy key
+    light_trained = trained - split["heavy"]
+    assert ran["featurize_chunk"] == chunks(member_count, light_trained, split["validation"], split["check"], split["heavy"])
+    assert ran["score_chunk"] == chunks(member_count, split["validation"], split["check"], split["heavy"])
     assert ran["fill_chunk"] == chunks(member_count)
     # members and a sample of held-out keys through every answer path, every held-out key through the service's
     sampled = len(path_sample(list(range(split["heldout"]))))
-    assert ran["answer_chunk"] == chunks(member_count, sampled) + chunks(split["heldout"])
+    assert ran["answer_chunk"] == chunks(member_count, sampled) + chunks(split["heavy"], split["heldout"])
     assert len(chosen) == 1
 
     monkeypatch.setattr(build, "fit_model", lambda *args: chosen[0])
