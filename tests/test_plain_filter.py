@@ -12,7 +12,8 @@ import pytest
 import tamis.flows.build as build
 from tamis import cli, publish
 from tamis.loader import open_filter
-from tamis.model import ModelChoice, compile_booster
+from tamis.booster import compile_booster
+from tamis.model import ModelChoice
 from tamis.report_page import REPORT_PAGE_NAME
 from small_build import small_config
 from tamis_testing import plain_build_flow, write_small_corpus
