@@ -74,6 +74,7 @@ from tamis.flows.build import (
     choose_regions,
     extract_features,
     fill_filters,
+    spare_filters,
     read_corpus,
     run_in_process,
     train_model,
@@ -244,7 +245,8 @@ class Built:
 def build_artifact(prepared: Prepared, path: Path, forest, plan, member_scores, probe_scores) -> Built:
     """The filters of a plan (anything with `boundaries` and `fprs`), packaged with the forest."""
     seed = prepared.config.filters.hash_seed
-    filters = fill_filters(run_in_process, prepared.corpus, member_scores, plan, prepared.config)
+    sparing = spare_filters(prepared.corpus, member_scores, probe_scores[: prepared.heavy], plan, prepared.config)
+    filters = fill_filters(run_in_process, prepared.corpus, member_scores, plan, prepared.config, sparing.filters)
     write_package.fn(path, prepared.spec, forest, plan, filters, seed, {"benchmark": path.stem}, None)
     return Built(path, filters, probe_answers(probe_scores, prepared, plan.boundaries, filters))
 
@@ -337,10 +339,10 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
         verify.require_heldout(strata, target, config.gate, config.corpus.heldout_share)
     except BadInput:
         return TargetResult(prepared.name, target, refused=refusal(prepared, target))
-    aim = verify.aim_fpr(target, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas)
+    aim = verify.aim_fpr(target, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas, config.filters.variants)
     started = time.perf_counter()
     choice = train_model.fn(corpus, prepared.train, prepared.features, aim, config, quiet)
-    plan, scores = choose_regions(run_in_process, corpus, prepared.features, choice.forest, aim, config)
+    plan, scores, _ = choose_regions(run_in_process, corpus, prepared.features, choice.forest, aim, config)
     probe_scores = score_batch(choice.forest, prepared.probe_features)
     build = functools.partial(
         build_artifact, prepared, forest=choice.forest, member_scores=scores.member_scores, probe_scores=probe_scores

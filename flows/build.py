@@ -43,6 +43,7 @@ from tamis.config import BuildConfig, require_paths
 from tamis.drift import Drift, measure_drift
 from tamis.errors import BadInput
 from tamis.features import default_feature_spec, featurize
+from tamis.hot_keys import Sparing, spare_heavy_keys
 from tamis.filters import RegionFilter, chunk_words, empty_filters, merge_words
 from tamis.loader import open_filter
 from tamis.model import ModelChoice, fit_model, fit_model_on_cluster
@@ -253,13 +254,24 @@ def choose_regions(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, aim: f
 
     first, estimate = plan_for(aim)
     plan = plan_for(min(aim * aim / estimate, MAX_PLANNED_RATE))[0] if estimate > 0 else first
-    return plan, ScoreSample(scores["members"], nonmember_scores, weights)
+    return plan, ScoreSample(scores["members"], nonmember_scores, weights), scores["heavy"]
 
 
-def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, config: BuildConfig) -> list[RegionFilter]:
-    """One filter per region holding exactly its members: the bits of each chunk of members, ORed."""
+def spare_filters(corpus, member_scores: np.ndarray, heavy_scores: np.ndarray, plan, config: BuildConfig) -> Sparing:
+    """The region filters, bits still clear, in the variants that answer the fewest heavy lookups
+    maybe (`tamis.hot_keys`)."""
     regions = region_of(member_scores, plan.boundaries)
-    filters = empty_filters(regions, plan.fprs, config.filters.hash_seed)
+    seed = config.filters.hash_seed
+    return spare_heavy_keys(empty_filters(regions, plan.fprs, seed), corpus.members, regions, corpus.heavy.keys,
+                            corpus.heavy.counts, region_of(heavy_scores, plan.boundaries), seed, config.filters.variants)
+
+
+def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, config: BuildConfig,
+                 empty: list[RegionFilter] | None = None) -> list[RegionFilter]:
+    """One filter per region holding exactly its members: the bits of each chunk of members, ORed
+    into `empty` (the plan's filters with their bits clear when none are given)."""
+    regions = region_of(member_scores, plan.boundaries)
+    filters = empty if empty is not None else empty_filters(regions, plan.fprs, config.filters.hash_seed)
     size = config.compute.chunk_keys
     chunks = [Chunk(keys, part) for keys, part in zip(chunks_of(corpus.members, size), chunks_of(regions, size))]
     words = run_chunks(fill_chunk, chunks, filters, config.filters.hash_seed)
@@ -275,6 +287,7 @@ class Candidate:
     plan: RegionPlan
     filters: list[RegionFilter]
     scores: ScoreSample
+    sparing: Sparing
 
 
 def plain_candidate(run_chunks: ChunkMap, corpus, learned: Candidate, aim: float, config: BuildConfig) -> Candidate:
@@ -286,10 +299,11 @@ def plain_candidate(run_chunks: ChunkMap, corpus, learned: Candidate, aim: float
     member_scores = np.full(len(corpus.members), forest.bias, dtype=np.int64)
     validation_scores = np.full(len(corpus.validation.keys), forest.bias, dtype=np.int64)
     plan = plan_regions(member_scores, validation_scores, corpus.validation.counts, aim, config.regions)
-    filters = fill_filters(run_chunks, corpus, member_scores, plan, config)
+    sparing = spare_filters(corpus, member_scores, np.full(len(corpus.heavy.keys), forest.bias, dtype=np.int64), plan, config)
+    filters = fill_filters(run_chunks, corpus, member_scores, plan, config, sparing.filters)
     choice = replace(learned.choice, forest=forest, trees=0, auc=0.5, model_bytes=forest.nbytes,
                      filter_bytes=sum(f.nbytes for f in filters), total_bytes=forest.nbytes + sum(f.nbytes for f in filters))
-    return Candidate(choice, plan, filters, ScoreSample(member_scores, validation_scores, corpus.validation.counts))
+    return Candidate(choice, plan, filters, ScoreSample(member_scores, validation_scores, corpus.validation.counts), sparing)
 
 
 def write_candidate(path: Path, spec: dict, candidate: Candidate, config: BuildConfig, provenance: dict) -> int:
@@ -434,17 +448,19 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
         strata = verify.strata_of(corpus)
         verify.require_heldout(strata, config.target.fpr, config.gate, config.corpus.heldout_share)
     provenance = build_provenance(config, corpus)
-    aim = verify.aim_fpr(config.target.fpr, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas)
+    aim = verify.aim_fpr(config.target.fpr, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas,
+                         config.filters.variants)
     spec = default_feature_spec()
     train = training_keys(corpus, config)
     with stages.stage("features"):
         X = extract_features(stages.chunks("features"), corpus, train, spec, config)
     choice = stages.run("model", train_model, corpus, train, X, aim, config, stepped=True)
     with stages.stage("regions"):
-        plan, scores = choose_regions(stages.chunks("regions"), corpus, X, choice.forest, aim, config)
+        plan, scores, heavy_scores = choose_regions(stages.chunks("regions"), corpus, X, choice.forest, aim, config)
     with stages.stage("filters"):
-        filters = fill_filters(stages.chunks("filters"), corpus, scores.member_scores, plan, config)
-    learned = Candidate(choice, plan, filters, scores)
+        sparing = spare_filters(corpus, scores.member_scores, heavy_scores, plan, config)
+        filters = fill_filters(stages.chunks("filters"), corpus, scores.member_scores, plan, config, sparing.filters)
+    learned = Candidate(choice, plan, filters, scores, sparing)
     with stages.stage("plain"):
         plain = plain_candidate(stages.chunks("plain"), corpus, learned, aim, config)
 
@@ -498,6 +514,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 drift=drift,
                 comparison=comparison,
                 published_plain=chosen is plain,
+                sparing=chosen.sparing,
                 version=next_version if passed else None,
                 timings=stages.timings,
             )

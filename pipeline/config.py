@@ -182,6 +182,10 @@ class GateSettings:
 class FilterSettings:
     # seeds the xxh3-128 hash of every backup filter; stored in the artifact, so any value works
     hash_seed: int = field(default=0x7A3115, metadata={"range": (0, (1 << 64) - 1)})
+    # variants of each region's filter tried to spare the heavy keys (tamis.hot_keys); the best of
+    # 8 lets the aim take no room for the luck of hashing on heavy keys (tamis.verify.aim_fpr).
+    # Each variant costs one more insertion of the region's members; 1 turns the choice off.
+    variants: int = field(default=8, metadata={"range": (1, 64)})
 
 
 @dataclass(frozen=True)

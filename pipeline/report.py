@@ -12,6 +12,7 @@ from tamis.bloom import bloom_bits, lower_bound_bits
 from tamis.config import BuildConfig
 from tamis.corpus import Corpus
 from tamis.drift import Drift
+from tamis.hot_keys import Sparing
 from tamis.verify import GateCheck, PlainComparison, Verification, refusal_reasons
 
 
@@ -58,6 +59,7 @@ def build_report(
     drift: Drift,
     comparison: PlainComparison,
     published_plain: bool,
+    sparing: Sparing,
     version: int | None,
     timings: dict,
 ) -> dict:
@@ -88,7 +90,12 @@ def build_report(
             **corpus.stats,
         },
         "heldout": verification.heldout.as_report(),
-        "strata": {**verification.heldout.strata_report(), "aim_fpr": aim_fpr, "aim_below_half_target": aim_fpr < target / 2},
+        "strata": {
+            **verification.heldout.strata_report(),
+            "aim_fpr": aim_fpr,
+            "aim_below_half_target": aim_fpr < target / 2,
+            "hot_keys": sparing.as_report(),
+        },
         "false_negatives": verification.false_negatives,
         "answer_paths": verification.paths.as_report(),
         "size": {

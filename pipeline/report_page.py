@@ -270,6 +270,8 @@ def strata_rows(strata: dict) -> list[tuple[str, object]]:
         (f"tail rate / its upper bound ({strata['confidence']:.0%})",
          f"{_percent(strata['tail_fpr'])} / {_percent(strata['tail_fpr_upper'])}"),
         ("planned for (aim)", _percent(strata["aim_fpr"]) + aim_note),
+        (f"heavy false-positive lookups: first filter variants / best of {strata['hot_keys']['variants']}",
+         f"{strata['hot_keys']['heavy_false_positive_lookups_first']:,} / {strata['hot_keys']['heavy_false_positive_lookups_chosen']:,}"),
     ]
 
 
