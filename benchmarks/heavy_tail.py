@@ -8,9 +8,16 @@ CASE is one of:
                (count = floor(X), X Pareto with minimum 1: most keys once, a few hundreds of
                thousands of times; the law of the trade for heavy-tailed popularity, V. Pareto 1896)
     keys       the same keys without counts (every key one lookup)
+    demo       the Emberfall demo corpus with its own lookup counts (Zipf-like, capped at 1,000)
+    words      the open word corpus of benchmarks/word_corpus.py (needs the bench extra; --members
+               and --non-members do not apply): English words against foreign words weighted by
+               their frequency
     zipf       a known lookup law: the non-members' popularity Zipf by rank (exponent 1), a window
                of --lookups lookups drawn multinomially; the script also prints the artifact's exact
                future rate sum_k pi_k a_k over every non-member, looked up in the window or not
+
+--heavy-count sets tau (corpus.heavy_count); running a case at several values compares the bytes
+of the build's rule (0, tau = 44) with other cutoffs.
 
 For each seed (the corpus seed and the split seed both move with it) it writes the corpus into a
 temporary folder, runs `tamis build` on the demo defaults (configs/demo.toml) at the target in a
@@ -26,6 +33,7 @@ import json
 import subprocess
 import sys
 import tempfile
+import time
 from pathlib import Path
 
 import numpy as np
@@ -34,6 +42,8 @@ import polars as pl
 from tamis.demo import write_demo_corpus
 from tamis.loader import open_filter
 from tamis.publish import current_artifact
+
+import word_corpus  # benchmarks/word_corpus.py: this script's folder is on sys.path when it runs
 
 TAMIS = [str(Path(sys.executable).with_name("tamis"))]
 DEMO_CONFIG = Path(__file__).resolve().parents[1] / "configs" / "demo.toml"
@@ -57,7 +67,12 @@ def write_config(folder: Path, members: Path, lookups: Path, target: float, seed
 
 def write_case(case: str, folder: Path, members: int, non_members: int, seed: int, lookups: int):
     """The corpus files of a case, and for `zipf` every non-member with its lookup law pi."""
+    if case == "words":
+        members_path, table = word_corpus.write_word_corpus(folder)
+        return members_path, table, ([], None)
     members_path, table = write_demo_corpus(folder, members=members, non_members=non_members, seed=seed)
+    if case == "demo":
+        return members_path, table, ([], None)
     keys = pl.read_parquet(table).select("key")
     rng = np.random.default_rng(seed)
     law = None
@@ -85,6 +100,7 @@ def one_build(case: str, seed: int, args) -> bool:
         folder = Path(scratch)
         members, table, (population, law) = write_case(case, folder, args.members, args.non_members, seed, args.lookups)
         config, store = write_config(folder, members, table, args.target, seed, args.heavy_count)
+        started = time.perf_counter()
         done = subprocess.run(TAMIS + ["build", str(config)], capture_output=True, text=True)
         reports = sorted(store.glob("*/report.json")) + sorted(store.glob("refused/*/report.json"))
         if not reports:
@@ -98,7 +114,7 @@ def one_build(case: str, seed: int, args) -> bool:
             f"aim {report['aim_fpr']:.4%}, rate {held['fpr']:.4%}, bound {held['fpr_upper']:.4%}; "
             f"tau {strata['tau']}, {strata['heavy_keys']:,} heavy keys with {strata['heavy_share']:.1%} of lookups, "
             f"heavy false positives {strata['heavy_false_positive_share']:.4%}; {report['size']['total_bytes']:,} bytes, "
-            f"{base['ratio']:.3f} x plain Bloom{exact}",
+            f"{base['ratio']:.3f} x plain Bloom{exact}; {time.perf_counter() - started:.0f} s",
             flush=True,
         )
         return bool(report["gate"]["passed"])
@@ -106,7 +122,7 @@ def one_build(case: str, seed: int, args) -> bool:
 
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("case", choices=("pareto", "keys", "zipf"))
+    parser.add_argument("case", choices=("pareto", "keys", "zipf", "demo", "words"))
     parser.add_argument("--members", type=int, default=300_000)
     parser.add_argument("--non-members", type=int, default=2_700_000)
     parser.add_argument("--lookups", type=int, default=2_000_000, help="window lookups of the zipf case")

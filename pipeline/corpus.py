@@ -92,7 +92,7 @@ _SIZE_SUFFIXES = {"": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
 # (Poisson: 1.645 / sqrt(c) <= 0.25, so c >= 43.3): its share of tomorrow's lookups is then its
 # share of the window's, well enough to answer it exactly instead of sampling it. Lower cutoffs
 # take more keys out of the sample (a tighter tail bound) but treat keys as recurring whose count
-# is mostly noise; benchmarks/heavy_cutoff.py compares the bytes of other choices.
+# is mostly noise; `benchmarks/heavy_tail.py CASE --heavy-count T` compares the bytes of other choices.
 AUTO_HEAVY_COUNT = 44
 
 
