@@ -160,7 +160,8 @@ def summary_text(report: dict, folder: Path) -> str:
         f"lookups {report['corpus']['lookups']:,}",
         f"  size {size['total_bytes']:,} bytes ({size['bits_per_member']:.2f} bits/member; model {size['model_bytes']:,}, "
         f"filters {size['filter_bytes']:,})",
-        f"  plain Bloom filter at the same target {base['bloom_bytes']:,} bytes: ratio {base['ratio']:.3f}",
+        f"  plain Bloom filter's bits at the target (no header, no margin for the measurement) "
+        f"{base['bloom_bytes']:,} bytes: ratio {base['ratio']:.3f}",
         f"  FPR {held['fpr']:.4%} (upper bound {held['fpr_upper']:.4%} at {held['confidence']:.0%}), "
         f"target {report['target_fpr']:.4%}, aim {report['aim_fpr']:.4%}",
         *strata_lines(report.get("strata")),

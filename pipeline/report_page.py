@@ -248,7 +248,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("artifact bytes", _count(size["total_bytes"])),
         ("model bytes / filter bytes", f"{size['model_bytes']:,} / {size['filter_bytes']:,}"),
         ("bits per member", f"{size['bits_per_member']:.2f}"),
-        ("plain Bloom filter bytes (ratio)", f"{base['bloom_bytes']:,} ({base['ratio']:.3f})"),
+        ("plain Bloom filter bytes at the target, bits alone (ratio)", f"{base['bloom_bytes']:,} ({base['ratio']:.3f})"),
         ("lower bound bytes (any filter without a model)", f"{base['lower_bound_bytes']:,.0f}"),
         ("KL divergence / AUC", f"{report['separation']['kl_bits']:.3f} bits / {report['separation']['auc']:.4f}"),
         ("model", f"{report['model']['trees']} trees"),
