@@ -335,15 +335,18 @@ class Artifact:
 
 
 def load_artifact(path: str | os.PathLike) -> Artifact:
-    """Read and check an artifact file.
-
-    Reads the file into memory once, then checks magic, major version, header bounds and checksum,
-    every section's table entry, bounds and checksum in that copy before returning; raises
-    ArtifactError saying what is wrong and where. The sections are views of the same copy, so what
-    was checked is what is answered from, whatever happens to the file afterwards.
-    """
+    """Read an artifact file into memory once and check it (`check_artifact`)."""
     path = Path(path)
-    data = _read_file(path)
+    return check_artifact(path, _read_file(path))
+
+
+def check_artifact(path: Path, data: bytes) -> Artifact:
+    """Check the bytes of an artifact read from `path`.
+
+    Checks magic, major version, header bounds and checksum, every section's table entry, bounds and
+    checksum before returning; raises ArtifactError saying what is wrong and where. The sections are
+    views of `data`, so what was checked is what is answered from, whatever happens to the file.
+    """
     version, header_length, header_sum = _read_preamble(path, data)
     decoded = _decode_header(path, data[PREAMBLE.size : PREAMBLE.size + header_length], header_sum)
     if len(decoded["sections"]) > MAX_SECTIONS:

@@ -16,6 +16,13 @@ stored in it is ever executed.
 and returns a degraded filter that answers True ("maybe") for every key, so a service that starts
 with a damaged artifact loses the filter's savings but never wrongly turns a member away.
 
+Given a store folder, `open_filter(store)` serves the version in service (`tamis.store`) as a
+`ServedFilter`, which answers like the filters above and swaps to a newly published version when
+asked (`refresh()`) or every `refresh_seconds`:
+
+    with open_filter("/srv/tamis/store", refresh_seconds=60) as bans:
+        bans.contains(handle); bans.version; bans.fpr
+
 A "maybe" (True) is only a hint: confirm it against the authoritative set before acting on it.
 """
 
@@ -25,6 +32,7 @@ import copy
 import dataclasses
 import logging
 import os
+import threading
 import warnings
 from dataclasses import dataclass
 from functools import cached_property
@@ -33,7 +41,8 @@ from typing import Any, Iterable, Literal
 
 import numpy as np
 
-from tamis.artifact import ArtifactError, load_artifact
+from tamis import store
+from tamis.artifact import ArtifactError, check_artifact, load_artifact
 from tamis.bloom import BloomFilter
 from tamis.features import feature_layout
 from tamis.format import HASHING, HEADER_KIND, REGION_MODES
@@ -116,6 +125,37 @@ class MembershipFilter:
     def hash_seed(self) -> int:
         return self.tables.seed
 
+    # The figures the build measured, read from the header (None when it holds none).
+
+    @property
+    def fpr(self) -> float | None:
+        """The held-out false-positive rate measured at build time."""
+        return _figure(self.header.get("measured"), "fpr")
+
+    @property
+    def fpr_upper(self) -> float | None:
+        """Its one-sided upper confidence bound."""
+        return _figure(self.header.get("measured"), "fpr_upper")
+
+    @property
+    def target(self) -> float | None:
+        """The false-positive rate the build was asked to meet."""
+        return _figure(self.header.get("measured"), "target_fpr")
+
+    @property
+    def built_at(self) -> str | None:
+        """When the build ran (UTC, ISO 8601)."""
+        provenance = self.header.get("provenance")
+        built = provenance.get("built_at") if isinstance(provenance, dict) else None
+        return built if isinstance(built, str) else None
+
+    def __repr__(self) -> str:
+        measured = "not measured" if self.fpr is None else f"fpr {self.fpr:.2%}"
+        return (
+            f"MembershipFilter({str(self.path)!r}, format {self.format}, {self.forest.trees} trees, "
+            f"{len(self.regions)} regions, {measured}, built {self.built_at})"
+        )
+
     @cached_property
     def _path(self) -> NumpyPath | CompiledPath:
         return query_path(self.tables, self.answer_path)
@@ -177,18 +217,29 @@ def answer_paths() -> tuple[str, ...]:
     return (*paths, *(name + SINGLE_KEY_SUFFIX for name in paths))
 
 
+def _figure(measured: Any, name: str) -> float | None:
+    value = measured.get(name) if isinstance(measured, dict) else None
+    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else None
+
+
 @dataclass(frozen=True, eq=False)
 class DegradedFilter:
     """Stands in for an artifact that could not be opened: every key may be a member.
 
     It answers True for every key, so it never gives a false negative; `info` says why it is
-    degraded. Input is checked as `MembershipFilter` checks it.
+    degraded. Input is checked as `MembershipFilter` checks it. Nothing was measured, so its
+    figures (`fpr`, `fpr_upper`, `target`, `built_at`) are None.
     """
 
     path: Path
     reason: str
 
     degraded = True
+    fpr = fpr_upper = target = built_at = None
+
+    def __repr__(self) -> str:
+        reason = " ".join(self.reason.split())
+        return f"DegradedFilter({str(self.path)!r}, answers maybe to every key: {reason:.160})"
 
     @property
     def info(self) -> dict:
@@ -273,12 +324,15 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict, a
     return MembershipFilter(path, f"{version[0]}.{version[1]}", header, tables, answer_path).using(answer_path)
 
 
-def _open_checked(path: Path, answer_path: str) -> MembershipFilter:
-    """Every failure to open is a FilterLoadError: the container's own errors, the header's, and
+def _open_checked(path: Path, answer_path: str, data: bytes | None = None) -> MembershipFilter:
+    """The artifact at `path` (its bytes `data` when already read), checked, parsed and answering
+    on `answer_path`.
+
+    Every failure to open is a FilterLoadError: the container's own errors, the header's, and
     anything else a hostile file might still provoke, named with its type (the checks above are
     meant to leave nothing for this last line to catch)."""
     try:
-        loaded = load_artifact(path)
+        loaded = load_artifact(path) if data is None else check_artifact(path, data)
         return _parse(path, loaded.version, loaded.header, loaded.sections, answer_path)
     except FilterLoadError:
         raise
@@ -288,17 +342,177 @@ def _open_checked(path: Path, answer_path: str) -> MembershipFilter:
         raise FilterLoadError(f"{path}: cannot be used ({type(error).__name__}: {error})") from error
 
 
+def _degraded(path: Path, error: FilterLoadError) -> DegradedFilter:
+    """The stand-in for an unusable artifact, after logging and warning why, once."""
+    message = (
+        f"membership filter {path} is unusable, so every key now answers 'maybe' (no savings, "
+        f"no false negatives): {error}"
+    )
+    LOG.error(message)
+    warnings.warn(message, RuntimeWarning, stacklevel=3)
+    return DegradedFilter(path, str(error))
+
+
+# ---------------------------------------------------------------------------------------------------
+# A store's version in service, kept current
+# ---------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class InService:
+    """One version of a store as served: its number (None when none could be opened) and its filter."""
+
+    version: int | None
+    filter: MembershipFilter | DegradedFilter
+
+
+def open_in_service(folder: Path, answer_path: str) -> InService:
+    """The version in service of the store `folder`, read as one (`tamis.store.read_in_service`);
+    FilterLoadError when there is none or it cannot be used."""
+    try:
+        version, path, data = store.read_in_service(folder)
+    except (store.StoreError, OSError) as error:
+        raise FilterLoadError(f"{folder}: {error}" if isinstance(error, OSError) else str(error)) from error
+    return InService(version, _open_checked(path, answer_path, data))
+
+
+class ServedFilter:
+    """The version in service of a store, answering like `MembershipFilter`, kept current.
+
+    `refresh()` swaps to the version now in service when it differs from the one served; with
+    `refresh_seconds`, a background thread calls it at that interval. The version served and its
+    filter are one object replaced by one assignment, and every query reads it once, so queries from
+    any number of threads run on during a swap and each is answered wholly by one version. A new
+    version that cannot be opened is not swapped in: `refresh()` raises FilterLoadError under
+    on_error="raise" and logs under "maybe", and the version served stays. `close()` (or leaving a
+    `with` block) stops the thread; a closed filter answers nothing (ValueError).
+    """
+
+    def __init__(self, folder: Path, on_error: OnError = "raise", refresh_seconds: float | None = None,
+                 answer_path: str | None = None):
+        if refresh_seconds is not None and not refresh_seconds > 0:
+            raise ValueError(f"refresh_seconds must be a positive number of seconds or None, got {refresh_seconds!r}")
+        self.store = folder
+        self._on_error = on_error
+        self._answer_path = answer_path or default_path()
+        self._swap = threading.Lock()  # one refresh at a time
+        self._closed = threading.Event()
+        try:
+            self._served = open_in_service(folder, self._answer_path)
+        except FilterLoadError as error:
+            if on_error == "raise":
+                raise
+            self._served = InService(None, _degraded(folder, error))
+        self._refresher = None
+        if refresh_seconds is not None:
+            self._refresher = threading.Thread(target=self._refresh_every, args=(refresh_seconds,),
+                                               name=f"tamis-refresh {folder}", daemon=True)
+            self._refresher.start()
+
+    def refresh(self) -> bool:
+        """Serve the version now in service if it is not the one served; True when it swapped."""
+        with self._swap:
+            self._check_open()
+            served = self._served
+            try:
+                if store.version_in_service(self.store) == served.version and not served.filter.degraded:
+                    return False
+                latest = open_in_service(self.store, self._answer_path)
+            except (FilterLoadError, store.StoreError, OSError) as error:
+                if self._on_error == "raise":
+                    raise FilterLoadError(str(error)) from error
+                LOG.error(f"{self.store}: version {served.version} stays in service here: {error}")
+                return False
+            self._served = latest
+            return True
+
+    def _refresh_every(self, seconds: float) -> None:
+        while not self._closed.wait(seconds):
+            try:
+                self.refresh()
+            except Exception:  # a thread must go on: the next interval tries again
+                LOG.exception(f"{self.store}: refreshing the version in service failed; version {self.version} stays")
+
+    def close(self) -> None:
+        """Stop refreshing and answering."""
+        self._closed.set()
+        if self._refresher is not None and self._refresher is not threading.current_thread():
+            self._refresher.join()
+
+    def __enter__(self) -> ServedFilter:
+        return self
+
+    def __exit__(self, *exc_info) -> None:
+        self.close()
+
+    def _check_open(self) -> None:
+        if self._closed.is_set():
+            raise ValueError(f"the filter of store {self.store} is closed")
+
+    def _filter(self) -> MembershipFilter | DegradedFilter:
+        self._check_open()
+        return self._served.filter
+
+    # Answers, each from the version served when the query began.
+
+    def contains(self, key: str | bytes) -> bool:
+        return self._filter().contains(key)
+
+    def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
+        return self._filter().contains_many(keys)
+
+    def __contains__(self, key: str | bytes) -> bool:
+        return self.contains(key)
+
+    # What is served: cheap reads of the version served.
+
+    @property
+    def version(self) -> int | None:
+        return self._served.version
+
+    @property
+    def degraded(self) -> bool:
+        return self._served.filter.degraded
+
+    @property
+    def info(self) -> dict:
+        return {**self._served.filter.info, "version": self._served.version}
+
+    @property
+    def fpr(self) -> float | None:
+        return self._served.filter.fpr
+
+    @property
+    def fpr_upper(self) -> float | None:
+        return self._served.filter.fpr_upper
+
+    @property
+    def target(self) -> float | None:
+        return self._served.filter.target
+
+    @property
+    def built_at(self) -> str | None:
+        return self._served.filter.built_at
+
+    def __repr__(self) -> str:
+        served = self._served
+        state = "closed" if self._closed.is_set() else f"version {served.version}"
+        return f"ServedFilter({str(self.store)!r}, {state}: {served.filter!r})"
+
+
 def open_filter(
-    path: str | os.PathLike, on_error: OnError = "raise", answer_path: str | None = None
-) -> MembershipFilter | DegradedFilter:
-    """Open an artifact written by `tamis.package.package_artifact`.
+    path: str | os.PathLike, on_error: OnError = "raise", answer_path: str | None = None, *,
+    refresh_seconds: float | None = None,
+) -> MembershipFilter | DegradedFilter | ServedFilter:
+    """Open an artifact written by `tamis.package.package_artifact`, or a store folder's version in
+    service (a `ServedFilter`, refreshed every `refresh_seconds` when given).
 
     answer_path: "numpy" or "compiled" (`tamis.query`); by default the compiled path when numba is
     installed, the numpy path otherwise. Both give the same answers; `MembershipFilter.using`
     switches an opened filter.
 
-    on_error="raise" (the default): raise FilterLoadError if the file is unusable.
-    on_error="maybe": return a `DegradedFilter` instead, which answers True for every key, after
+    on_error="raise" (the default): raise FilterLoadError if the artifact is unusable.
+    on_error="maybe": answer with a `DegradedFilter` instead, which answers True for every key, after
     logging the reason at ERROR level and issuing a RuntimeWarning, once, here.
 
     The file is read into memory once and checked there, and every answer comes from that copy:
@@ -307,15 +521,13 @@ def open_filter(
     if on_error not in ON_ERROR_CHOICES:
         raise ValueError(f"on_error must be one of {list(ON_ERROR_CHOICES)}, got {on_error!r}")
     path = Path(path)
+    if path.is_dir():
+        return ServedFilter(path, on_error, refresh_seconds, answer_path)
+    if refresh_seconds is not None:
+        raise ValueError(f"refresh_seconds applies to a store folder; {path} is not one")
     try:
         return _open_checked(path, answer_path or default_path())
     except FilterLoadError as error:
         if on_error == "raise":
             raise
-        message = (
-            f"membership filter {path} is unusable, so every key now answers 'maybe' (no savings, "
-            f"no false negatives): {error}"
-        )
-        LOG.error(message)
-        warnings.warn(message, RuntimeWarning, stacklevel=2)
-        return DegradedFilter(path, str(error))
+        return _degraded(path, error)
