@@ -483,7 +483,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
         with stages.stage("verify"):
             checked = verify_package(stages.chunks("verify"), artifact, corpus, config)
         # the measured figures go into the header; sections are unchanged, so what was verified is what ships
-        write_package(*package_args, checked.heldout.as_report())
+        write_package(*package_args, {**checked.heldout.as_report(), "target_fpr": config.target.fpr})
 
         with publish.store_lock(store):
             # under the lock: the version measured is the one a publish would replace

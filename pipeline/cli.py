@@ -218,12 +218,12 @@ def cmd_build(args) -> int:
 
 
 def _artifact_path(given: str) -> Path:
-    """An artifact file, or a store folder whose CURRENT version is used."""
+    """An artifact file, or a store folder whose version in service is used."""
     path = Path(given)
     if path.is_dir():
         current = publish.current_artifact(path)
         if current is None:
-            raise BadInput(f"{path} is a folder without a CURRENT version; give an artifact file or a store")
+            raise BadInput(f"{path} is a folder without a version in service; give an artifact file or a store")
         return current
     return path
 
@@ -437,7 +437,7 @@ def make_parser() -> argparse.ArgumentParser:
     build.set_defaults(run=cmd_build)
 
     lookup = command("lookup", "answer keys: KEY<TAB>maybe or KEY<TAB>no, in input order")
-    lookup.add_argument("artifact", help="an artifact file, or a store folder (its CURRENT version)")
+    lookup.add_argument("artifact", help="an artifact file, or a store folder (its version in service)")
     lookup.add_argument("keys", nargs="*", help="keys to look up (default: one a line from stdin)")
     lookup.add_argument("--key-encoding", choices=("utf-8", "bytes"), default="utf-8",
                         help="keys are UTF-8 text (default; a CR before a line's LF ends the line) or raw bytes "
@@ -446,10 +446,10 @@ def make_parser() -> argparse.ArgumentParser:
     lookup.set_defaults(run=cmd_lookup)
 
     show = command("show", "header, sizes, regions, measured FPR and provenance of an artifact")
-    show.add_argument("artifact", help="an artifact file, or a store folder (its CURRENT version)")
+    show.add_argument("artifact", help="an artifact file, or a store folder (its version in service)")
     show.set_defaults(run=cmd_show)
 
-    versions = command("versions", "list the published versions of a store (* marks CURRENT)")
+    versions = command("versions", "list the published versions of a store (* marks the version in service)")
     versions.add_argument("store")
     versions.set_defaults(run=cmd_versions)
 

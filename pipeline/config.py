@@ -145,7 +145,7 @@ class GateSettings:
     """The rules a build must pass to be published; each refusal names its rule.
 
     Every limit below reads 0 as "off". The two change limits compare the new artifact with the
-    version in service (`STORE/CURRENT`) and apply only when there is one that opens.
+    version in service (`STORE/IN_SERVICE`) and apply only when there is one that opens.
     """
 
     # the confidence of the one-sided upper bound on the held-out false-positive rate

@@ -1,6 +1,6 @@
 """Drift: how the version in service fares on today's corpus.
 
-Every build opens the store's CURRENT artifact with the loader a service uses and measures it the
+Every build opens the store's artifact in service with the loader a service uses and measures it the
 way verify measures the new one: the members of today's corpus it answers "no" to (keys added since
 it was built; it held every member of its own corpus) and its false-positive rate on today's
 lookups, heavy keys answered exactly and the tail bounded on held-out light keys. The split of light
@@ -28,7 +28,7 @@ from tamis.verify import Baseline, Measurement, check_filter
 class Drift:
     """The version in service against today's corpus.
 
-    `current_version` is None when the store has none in service (or CURRENT is unreadable);
+    `current_version` is None when the store has none in service (or its pointer is unreadable);
     `error` says why it could not be evaluated. The figures are set only when it was.
     """
 
@@ -76,7 +76,7 @@ class Drift:
 
 
 def measure_drift(store: Path, corpus: Corpus, confidence: float) -> Drift:
-    """Open the store's CURRENT artifact and measure it on today's members, heavy keys and held-out
+    """Open the store's artifact in service and measure it on today's members, heavy keys and held-out
     light keys, with the estimator and bound the gate uses (`tamis.verify.check_filter`).
 
     Call it with the store lock held, so that the version measured is the one a publish replaces.

@@ -1,23 +1,26 @@
 """Publish stage: the store of versions, and the atomic switch of the version in service.
 
     STORE/
-      CURRENT                 the version in service, as a decimal number and a newline
+      IN_SERVICE              the version in service, as a decimal number and a newline
       1/ 2/ 3/ ...            published versions: artifact.tamis and report.json
       refused/<build>/        builds the gate refused, kept with their report for inspection
       .staging-<build>-<r>/   a build in progress, locked by its build (removed or renamed when it ends)
       .removing-<v>-<r>/      an old version being deleted (renamed first, so it vanishes at once)
       .lock                   held while a build publishes
 
-A version folder appears by one rename of a complete staging folder, and CURRENT changes by one
-rename of a complete temporary file; both are fsynced, so after a crash at any point CURRENT names
-either the old or the new version, never a torn one (invariant 4).
+A version folder appears by one rename of a complete staging folder, and IN_SERVICE changes by
+one rename of a complete temporary file; both are fsynced, so after a crash at any point IN_SERVICE
+names either the old or the new version, never a torn one (invariant 4). What a service reads of a
+store (the pointer's name, the version it names) lives in `tamis.store`, which needs no build stack.
+A store written before the pointer had its name holds `CURRENT`: the first build or rollback that
+takes the store's lock writes IN_SERVICE from it and removes it (`migrate_pointer`).
 
 Several builds may share a store. Each holds an flock on its own staging folder while it runs; a
 new build removes only staging folders whose lock it can take (their build died), never a running
 one's. Publishing, refusing and the clean-up of what a crash left behind happen under the store's
 lock, so one build publishes at a time.
 
-Everything stays inside the store: the names read from it (CURRENT's content, version folders) must
+Everything stays inside the store: the names read from it (the pointer's content, version folders) must
 be canonical version numbers ("1", "2", ...; no sign, no leading zero, ASCII digits only), so no
 `..`, absolute path or other text can point elsewhere; the names written into it come from a build
 id checked to be one plain path component; and removing a folder never follows a symbolic link out.
@@ -35,35 +38,20 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from tamis.artifact import fsync_directory, write_atomically
-from tamis.errors import BadInput
+from tamis.store import ARTIFACT_NAME, LEGACY_POINTER_NAME, POINTER_NAME, StoreError, is_version_name
+from tamis.store import artifact_in_service as current_artifact
+from tamis.store import version_in_service as current_version
 
-ARTIFACT_NAME = "artifact.tamis"
 REPORT_NAME = "report.json"
-CURRENT_NAME = "CURRENT"
 LOCK_NAME = ".lock"
 STAGING_PREFIX = ".staging-"
 REMOVING_PREFIX = ".removing-"
 REFUSED_NAME = "refused"
 
-# A version number: what CURRENT holds and what a version folder is named. Up to 18 digits, so
-# every one fits in int64.
-_VERSION = re.compile(r"[1-9][0-9]{0,17}")
 # A build id (the stem of staging and refused folder names): one plain path component.
 _BUILD_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,127}")
-# CURRENT holds a version number and a newline; anything longer is not read, let alone trusted.
-_CURRENT_MAX_BYTES = 64
-
 # Staging folders this process builds in, each with the open descriptor that holds its flock.
 _held_staging: dict[Path, int] = {}
-
-
-class StoreError(BadInput):
-    """A store that cannot be used as asked (a missing version, nothing to roll back to)."""
-
-
-def is_version_name(name: str) -> bool:
-    """True for a canonical version number: the name of a version folder, the content of CURRENT."""
-    return _VERSION.fullmatch(name) is not None
 
 
 def check_store(store: Path) -> None:
@@ -99,37 +87,30 @@ def published_versions(store: Path) -> list[int]:
     )
 
 
-def current_version(store: Path) -> int | None:
-    """The version CURRENT names, None when there is no CURRENT; StoreError when it holds anything
-    but a version number (a path such as `../x` included)."""
-    try:
-        with open(store / CURRENT_NAME, "rb") as handle:
-            raw = handle.read(_CURRENT_MAX_BYTES + 1)
-    except FileNotFoundError:
-        return None
-    except NotADirectoryError:
-        raise StoreError(f"store {store} is a file, not a folder; give the path of a store folder") from None
-    text = raw.decode("ascii", errors="replace").strip()
-    if len(raw) > _CURRENT_MAX_BYTES or not is_version_name(text):
-        shown = text if len(raw) <= _CURRENT_MAX_BYTES else text[:_CURRENT_MAX_BYTES] + "..."
-        raise StoreError(
-            f"{store / CURRENT_NAME} holds {shown!r}, not a version number; run `tamis rollback` or write the number of "
-            f"a version folder into it"
-        )
-    return int(text)
-
-
-def current_artifact(store: Path) -> Path | None:
-    version = current_version(store)
-    return None if version is None else store / str(version) / ARTIFACT_NAME
-
-
 def set_current(store: Path, version: int) -> None:
-    """Point CURRENT at `version`. Call with the store lock held: temporary files of CURRENT that a
-    crashed writer left are removed first (every writer of CURRENT holds the lock)."""
-    for stale in store.glob(f".{CURRENT_NAME}.*.tmp"):
-        stale.unlink(missing_ok=True)
-    write_atomically(store / CURRENT_NAME, [f"{version}\n".encode()])
+    """Put `version` in service: IN_SERVICE names it, by one atomic rename, and a pointer of the
+    store's old name is removed. Call with the store lock held: temporary files of the pointer that
+    a crashed writer left are removed first (every writer of the pointer holds the lock)."""
+    for name in (POINTER_NAME, LEGACY_POINTER_NAME):
+        for stale in store.glob(f".{name}.*.tmp"):
+            stale.unlink(missing_ok=True)
+    write_atomically(store / POINTER_NAME, [f"{version}\n".encode()])
+    if (store / LEGACY_POINTER_NAME).exists():
+        (store / LEGACY_POINTER_NAME).unlink()
+        fsync_directory(store)
+
+
+def migrate_pointer(store: Path) -> None:
+    """A store whose pointer still has its old name (CURRENT) gets IN_SERVICE naming the same
+    version, and the old pointer goes. Call with the store lock held; a crash in between leaves both
+    naming one version, and the reader prefers IN_SERVICE."""
+    if not (store / LEGACY_POINTER_NAME).exists():
+        return
+    try:
+        version = current_version(store)
+    except StoreError:
+        return  # a pointer that names no version stays as it is, for its readers to report
+    set_current(store, version)
 
 
 @contextmanager
@@ -139,6 +120,7 @@ def store_lock(store: Path) -> Iterator[None]:
     with open(store / LOCK_NAME, "a+b") as handle:
         fcntl.flock(handle.fileno(), fcntl.LOCK_EX)
         try:
+            migrate_pointer(store)
             yield
         finally:
             fcntl.flock(handle.fileno(), fcntl.LOCK_UN)
@@ -254,9 +236,9 @@ def _clear_leftovers(store: Path) -> None:
 
 
 def publish_staging(store: Path, staging: Path, keep: int) -> int:
-    """Make a verified staging folder the next version and switch CURRENT to it; returns the version.
+    """Make a verified staging folder the next version and switch IN_SERVICE to it; returns the version.
 
-    Call with the store lock held. If CURRENT cannot be switched, the folder is renamed back to
+    Call with the store lock held. If IN_SERVICE cannot be switched, the folder is renamed back to
     `staging` and the error raised: the store is as it was. Versions beyond the newest `keep` are
     removed, never the current one.
     """
@@ -281,7 +263,7 @@ def publish_staging(store: Path, staging: Path, keep: int) -> int:
 
 
 def refuse_staging(store: Path, staging: Path, build_id: str) -> Path:
-    """Keep a refused build's folder under refused/ for inspection; CURRENT is left untouched.
+    """Keep a refused build's folder under refused/ for inspection; IN_SERVICE is left untouched.
 
     Call with the store lock held. A second refusal of the same build id gets a numbered name.
     """

@@ -152,7 +152,7 @@ def test_a_failing_stage_publishes_nothing_and_says_which_stage(published, corpu
         build.build_flow(small_config(*corpus_files, store))
     assert failed.value.stage == "verify" and isinstance(failed.value.error, RuntimeError)
     assert str(failed.value) == "stage verify failed: RuntimeError: the disk said no"
-    # no new version, CURRENT unchanged, and the staging folder is gone
+    # no new version, IN_SERVICE unchanged, and the staging folder is gone
     assert _store_entries(store) == before and publish.current_version(store) == outcome.version
 
 

@@ -96,7 +96,7 @@ def test_an_unopenable_version_in_service_is_reported_and_the_build_goes_on(buil
 
 
 def test_a_current_file_that_names_no_version_is_reported_too(tmp_path):
-    (tmp_path / publish.CURRENT_NAME).write_text("banana\n")
+    (tmp_path / publish.POINTER_NAME).write_text("banana\n")
     drift = measure_drift(tmp_path, None, 0.95)  # never read: the pointer fails first
     assert drift.status == "unreadable" and drift.current_version is None and "banana" in drift.error
     assert drift.baseline() is None and drift.as_report()["heldout_fpr"] is None

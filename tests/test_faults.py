@@ -25,7 +25,7 @@ from tamis_testing import SMALL_CONFIG_TOML, plain_build_flow, small_config, sna
 TESTS = Path(__file__).resolve().parent
 TARGET = 0.05
 # What a build may leave only while it runs: none of it may survive the next build.
-LEFTOVER_PATTERNS = (".staging-*", ".removing-*", ".CURRENT.*.tmp")
+LEFTOVER_PATTERNS = (".staging-*", ".removing-*", ".IN_SERVICE.*.tmp")
 
 
 @pytest.fixture(scope="module")
@@ -38,10 +38,10 @@ def members_of(path: Path) -> list[str]:
 
 
 def assert_serves_every_member(store: Path, members: list[str]) -> int:
-    """CURRENT names a published version whose artifact opens and answers every member; every
+    """IN_SERVICE names a published version whose artifact opens and answers every member; every
     other published version opens too. Returns the current version."""
     current = publish.current_version(store)
-    assert current in publish.published_versions(store), f"CURRENT names {current}, not a published version"
+    assert current in publish.published_versions(store), f"IN_SERVICE names {current}, not a published version"
     for version in publish.published_versions(store):
         artifact = open_filter(store / str(version) / publish.ARTIFACT_NAME)
         assert artifact.contains_many(members).all(), f"version {version} misses a member"
@@ -116,7 +116,7 @@ def published_store(corpus, tmp_path_factory) -> Path:
     return store
 
 
-@pytest.mark.parametrize("fragment", [".artifact.tamis.", ".report.json.", ".report.html.", ".CURRENT."])
+@pytest.mark.parametrize("fragment", [".artifact.tamis.", ".report.json.", ".report.html.", ".IN_SERVICE."])
 def test_a_full_disk_while_writing_leaves_the_store_as_it_was(corpus, published_store, tmp_path, monkeypatch, fragment):
     store = tmp_path / "store"
     shutil.copytree(published_store, store)
@@ -189,7 +189,7 @@ def test_the_kill_matrix_covers_every_stage_and_every_change_to_the_store(kill_m
     ]
     calls = {call for call, _ in kill_matrix["trace"]["calls"]}
     assert {"mkdir", "write", "replace", "rename", "fsync", "rmtree"} <= calls
-    assert any(path == "CURRENT" or path.startswith(".CURRENT.") for _, path in kill_matrix["trace"]["calls"])
+    assert any(path == "IN_SERVICE" or path.startswith(".IN_SERVICE.") for _, path in kill_matrix["trace"]["calls"])
 
 
 @pytest.mark.slow
@@ -198,7 +198,7 @@ def test_after_every_kill_a_whole_version_serves_every_member(kill_matrix, corpu
     for point in kill_matrix["points"]:
         killed = Path(point["killed"])
         current = assert_serves_every_member(killed, members)
-        assert current in (1, 2), f"{_point_name(point)}: CURRENT is {current}"
+        assert current in (1, 2), f"{_point_name(point)}: IN_SERVICE is {current}"
 
 
 @pytest.mark.slow

@@ -1,4 +1,4 @@
-"""Store: versions, CURRENT, refused builds, retention, rollback, staging locks and confinement."""
+"""Store: versions, the pointer IN_SERVICE, refused builds, retention, rollback, staging locks and confinement."""
 
 import errno
 import os
@@ -35,6 +35,37 @@ def test_versions_count_up_and_current_follows(tmp_path):
     assert publish.published_versions(store) == [1, 2, 3]
     assert publish.current_artifact(store) == store / "3" / publish.ARTIFACT_NAME
     assert not list(store.glob(".staging-*"))
+
+
+def test_the_pointer_has_a_name_of_its_own(tmp_path):
+    store = tmp_path / "store"
+    _publish(store, "b1")
+    assert publish.POINTER_NAME == "IN_SERVICE" and (store / "IN_SERVICE").read_text() == "1\n"
+    assert not (store / "CURRENT").exists()
+
+
+def test_a_store_with_the_old_pointer_name_is_read_and_migrated_once(tmp_path):
+    store = tmp_path / "store"
+    _publish(store, "b1")
+    _publish(store, "b2")
+    # the store as an earlier release left it: the pointer named CURRENT
+    os.rename(store / publish.POINTER_NAME, store / publish.LEGACY_POINTER_NAME)
+    assert publish.current_version(store) == 2 and publish.current_artifact(store) == store / "2" / publish.ARTIFACT_NAME
+    with publish.store_lock(store):  # what every build and rollback takes first
+        assert (store / publish.POINTER_NAME).read_text() == "2\n"
+        assert not (store / publish.LEGACY_POINTER_NAME).exists()
+    assert publish.rollback(store) == 1 and publish.current_version(store) == 1
+    # a crash between writing the new pointer and removing the old: the new one wins, the old goes
+    (store / publish.LEGACY_POINTER_NAME).write_text("2\n")
+    assert publish.current_version(store) == 1
+    assert _publish(store, "b3") == 3 and not (store / publish.LEGACY_POINTER_NAME).exists()
+    # an old pointer that names no version is left for its readers to report, and the build goes on
+    (store / publish.POINTER_NAME).unlink()
+    (store / publish.LEGACY_POINTER_NAME).write_text("banana")
+    with publish.store_lock(store):
+        pass
+    with pytest.raises(publish.StoreError, match="CURRENT holds 'banana', not a version number"):
+        publish.current_version(store)
 
 
 def test_refused_build_leaves_current_alone(tmp_path):
@@ -182,7 +213,7 @@ def test_build_ids_must_be_plain_names(tmp_path):
 def test_current_holding_anything_but_a_version_number_is_refused(tmp_path, content):
     store = tmp_path / "store"
     store.mkdir()
-    (store / publish.CURRENT_NAME).write_text(content)
+    (store / publish.POINTER_NAME).write_text(content)
     with pytest.raises(publish.StoreError, match="not a version number"):
         publish.current_version(store)
     with pytest.raises(publish.StoreError):
@@ -193,7 +224,7 @@ def test_current_accepts_a_number_with_or_without_a_newline(tmp_path):
     store = tmp_path / "store"
     store.mkdir()
     for content in ("12\n", "12", " 12\r\n"):
-        (store / publish.CURRENT_NAME).write_text(content)
+        (store / publish.POINTER_NAME).write_text(content)
         assert publish.current_version(store) == 12
 
 
@@ -222,9 +253,9 @@ def test_check_store_refuses_files_and_writes_nothing(tmp_path):
 def test_stale_current_temporaries_are_removed_when_current_changes(tmp_path):
     store = tmp_path / "store"
     _publish(store, "b1")
-    (store / ".CURRENT.99999.tmp").write_text("7\n")
+    (store / ".IN_SERVICE.99999.tmp").write_text("7\n")
     _publish(store, "b2")
-    assert not list(store.glob(".CURRENT.*.tmp"))
+    assert not list(store.glob(".IN_SERVICE.*.tmp"))
     assert publish.current_version(store) == 2
 
 
@@ -245,7 +276,7 @@ def test_a_full_disk_while_switching_current_leaves_the_store_as_it_was(tmp_path
     _publish(store, "b1")
     before = snapshot(store)
     staging = _stage(store, "b2")
-    _full_disk_on_fsync(monkeypatch, ".CURRENT.")
+    _full_disk_on_fsync(monkeypatch, ".IN_SERVICE.")
     with publish.store_lock(store), pytest.raises(OSError) as raised:
         publish.publish_staging(store, staging, keep=10)
     assert raised.value.errno == errno.ENOSPC

@@ -4,7 +4,7 @@ holds can point a command outside it (invariant 5).
 
 Already covered elsewhere and not repeated here: a header length over 1 MiB refused before it is
 read, a msgpack extension type refused, section dtypes outside the allowed
-list (an object dtype included) refused (tests/test_artifact.py); CURRENT holding anything but a
+list (an object dtype included) refused (tests/test_artifact.py); IN_SERVICE holding anything but a
 version number, build ids that are not plain names, retention never following a symbolic link
 (tests/test_publish.py).
 """
@@ -235,7 +235,7 @@ def test_any_header_value_anywhere_opens_or_fails_with_the_one_error_type(tmp_pa
 def test_a_current_pointing_outside_the_store_is_refused_by_every_command(tmp_path, capsys, content, command):
     store = tmp_path / "store"
     store.mkdir()
-    (store / publish.CURRENT_NAME).write_text(content)
+    (store / publish.POINTER_NAME).write_text(content)
     argv = [command, str(store)] + (["some-key"] if command == "lookup" else [])
     assert main(argv) == 2
     err = capsys.readouterr().err
