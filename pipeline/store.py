@@ -18,7 +18,6 @@ leading zero, ASCII digits only), so no `..`, absolute path or other text can po
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
 
 from tamis.errors import BadInput
@@ -27,9 +26,9 @@ POINTER_NAME = "IN_SERVICE"
 LEGACY_POINTER_NAME = "CURRENT"
 ARTIFACT_NAME = "artifact.tamis"
 
-# A version number: what the pointer holds and what a version folder is named. Up to 18 digits, so
-# every one fits in int64.
-_VERSION = re.compile(r"[1-9][0-9]{0,17}")
+# A version number (what the pointer holds and what a version folder is named) has up to 18
+# digits, so every one fits in int64.
+_VERSION_MAX_DIGITS = 18
 # The pointer holds a version number and a newline; anything longer is not read, let alone trusted.
 _POINTER_MAX_BYTES = 64
 # Rounds of reading the pointer and then the artifact before giving up: a round fails only when a
@@ -44,7 +43,7 @@ class StoreError(BadInput):
 
 def is_version_name(name: str) -> bool:
     """True for a canonical version number: the name of a version folder, the pointer's content."""
-    return _VERSION.fullmatch(name) is not None
+    return name.isascii() and name.isdigit() and not name.startswith("0") and len(name) <= _VERSION_MAX_DIGITS
 
 
 def _read_pointer(store: Path, name: str) -> int | None:
