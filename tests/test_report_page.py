@@ -198,3 +198,18 @@ def test_the_drift_chart_reads_in_percent_and_draws_no_empty_members_chart(build
     assert rows["today's members it misses"] == "none"
     missed = {**report["drift"], "members_missed": 3, "members_missed_share": 0.001}
     assert len(drift_figure(missed, report["heldout"], 0, report["target_fpr"]).axes) == 2
+
+
+def test_the_strata_show_on_the_page_and_an_aim_below_half_the_target_is_said(builds):
+    report = copy.deepcopy(builds[0].report)
+    strata = report["strata"]
+    assert strata["tau"] == 44 and strata["heavy_keys"] > 0 and 0 < strata["heavy_share"] < 1
+    assert strata["heavy_share"] + strata["tail_share"] == pytest.approx(1.0)
+    scores = ScoreSample(np.array([5, 9, 12]), np.array([-3, 0, 7, 8]), np.array([1, 4, 1, 2]))
+    text = text_of(parse(render_report_page(report, scores)))
+    assert "Lookups by stratum" in text and f"{strata['heavy_keys']:,}" in text
+    assert len(cli.strata_lines(strata)) == (2 if strata["aim_below_half_target"] else 1)
+    strata["aim_below_half_target"], strata["aim_fpr"] = True, report["target_fpr"] / 10
+    said = cli.strata_lines(strata)
+    assert len(said) == 2 and "below half the target" in said[1]
+    assert "below half the target" in text_of(parse(render_report_page(report, scores)))
