@@ -316,10 +316,21 @@ async def finished_runs(deployment_id, since: datetime.datetime) -> int:
         )
 
 
-async def stop_requested(stop: asyncio.Event, deployment_id, since: datetime.datetime, stop_after_runs: int | None) -> None:
-    """Returns once `stop` is set, or once `stop_after_runs` runs have finished since `since`."""
+async def stop_requested(stop: asyncio.Event, deployment_id, since: datetime.datetime, stop_after_runs: int | None,
+                         runner: Runner) -> None:
+    """Returns once `stop` is set, or once `stop_after_runs` runs have finished since `since` and the
+    runner holds none any more.
+
+    A run's final state reaches the API from the run's own process, before that process has exited
+    and the runner has let it go; a runner stopped in between cancels the run it still holds,
+    replacing its final state with Cancelled('Runner is shutting down.'). With RUNNER_LIMIT = 1 a
+    free slot means the runner holds no run."""
     while not stop.is_set():
-        if stop_after_runs is not None and await finished_runs(deployment_id, since) >= stop_after_runs:
+        if (
+            stop_after_runs is not None
+            and await finished_runs(deployment_id, since) >= stop_after_runs
+            and runner.has_slots_available()
+        ):
             return
         try:
             await asyncio.wait_for(stop.wait(), RUN_COUNT_POLL_SECONDS)
@@ -341,7 +352,7 @@ async def run_until_stopped(runner: Runner, deployment_id, stop: asyncio.Event, 
     The runner pauses the deployment's schedule on its way out (pause_on_shutdown)."""
     since = datetime.datetime.now(datetime.timezone.utc)
     runner_task = asyncio.create_task(runner.start())
-    stopping = asyncio.create_task(stop_requested(stop, deployment_id, since, stop_after_runs))
+    stopping = asyncio.create_task(stop_requested(stop, deployment_id, since, stop_after_runs, runner))
     try:
         if await runner_started(runner, runner_task):
             on_started()

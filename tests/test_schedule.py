@@ -7,6 +7,7 @@ process by its id.
 """
 
 import asyncio
+import datetime
 import json
 import os
 import queue
@@ -124,6 +125,32 @@ def test_ctrl_c_and_sigterm_ask_the_serving_loop_to_stop_and_the_old_handlers_re
 def _outcome(published: bool, reasons: list[str]) -> BuildOutcome:
     return BuildOutcome(published=published, version=4 if published else None, folder=Path("/srv/store/4"),
                         report={"gate": {"passed": published, "reasons": reasons}})
+
+
+def test_serving_stops_only_once_the_runner_has_let_its_last_run_go(monkeypatch):
+    # A run's final state reaches the API from its own process before that process exits; a runner
+    # stopped in between cancels the run it still holds and overwrites the state with
+    # Cancelled('Runner is shutting down.'). Here the count is reached at once, and the runner
+    # holds the run for two more polls.
+    async def two_finished(deployment_id, since):
+        return 2
+
+    class HoldingRunner:
+        polls_holding = 2
+
+        def has_slots_available(self) -> bool:
+            self.polls_holding -= 1
+            return self.polls_holding < 0
+
+    monkeypatch.setattr(nightly, "finished_runs", two_finished)
+    monkeypatch.setattr(nightly, "RUN_COUNT_POLL_SECONDS", 0.01)
+    runner = HoldingRunner()
+
+    async def serve() -> None:
+        await nightly.stop_requested(asyncio.Event(), "deployment", datetime.datetime.now(datetime.timezone.utc), 2, runner)
+
+    asyncio.run(serve())
+    assert runner.polls_holding == -1
 
 
 def test_a_published_build_completes_with_its_summary():
