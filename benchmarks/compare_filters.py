@@ -1,7 +1,8 @@
 """Compare a plain Bloom filter, a one-threshold learned filter and the full artifact, byte for byte.
 
 Run: .venv/bin/python benchmarks/compare_filters.py [--quick] [--targets 0.001,0.01,0.05]
-         [--corpus demo,words,words-by-key] [--demo-members 200000] [--demo-non-members 2000000]
+         [--corpus demo,words,words-by-key,hex] [--demo-members 200000] [--demo-non-members 2000000]
+         [--max-region-fpr 0.1]
 
 Corpora. `demo` is the Emberfall demo (`tamis.demo.write_demo_corpus`, by default the full
 200,000 members and 2,000,000 looked-up handles). `words` is the open word corpus of
@@ -10,14 +11,20 @@ occurrence counts as lookup counts (needs the `bench` extra).
 Those counts have a very heavy head (one word carries 2.7% of all lookups): the words looked up at
 least tau times are a take-all stratum, answered exactly, and only the light tail is sampled, so
 every target builds (`tamis.verify`). `words-by-key` is the same keys without the
-counts, every distinct word one lookup: about 460,000 held-out words, plenty for 0.1%. Every corpus
-uses the demo's build config (`configs/demo.toml`) apart from the target.
+counts, every distinct word one lookup: about 460,000 held-out words, plenty for 0.1%. `hex` is keys
+with no structure: 200,000 member and 1,000,000 non-member random 128-bit digests as hex, no
+counts, so the model can learn nothing and the artifact is a plain filter with a header. Every
+corpus uses the demo's build config (`configs/demo.toml`) apart from the target (and the region
+cap, --max-region-fpr).
 
 Each corpus goes through the pipeline's own stage functions in this process (the bodies of the
 build flow's tasks in `tamis.flows.build`): the corpus stage with its hash split, and the features stage
 once per corpus, its matrices shared by every target. Then, per target F:
 
 (a) plain Bloom: one Bloom filter of all members at F (`tamis.bloom`); its bytes are its bit array.
+    Beside it, table 2 gives the best plain static filter at F* (`tamis.baselines.best_static_filter`:
+    the smaller of that Bloom filter and a binary fuse filter with 2^-r <= F*), the baseline a
+    demanding user would pick without a model.
 (b) one threshold: the chosen model with one score threshold; members below it go into one backup
     Bloom filter, keys at or above it answer yes (`tamis.baselines.plan_single_threshold`); the
     threshold and the split of F between the two parts are chosen on the validation non-members,
@@ -48,10 +55,14 @@ therefore compare at F*, the full artifact's measured held-out rate:
 Table 1 prints the raw figures at the target, table 3 what explains the sizes (the model's AUC and
 bytes, the regions' divergence against the most the segments allow, the number of regions and of
 budgets at 1, and full - ideal@F* split into container bytes, Bloom rounding, clamping, and the gap
-between the aim the filters were sized for and the rate measured).
+between the aim the filters were sized for and the rate measured). Table 4 lists every backup filter
+of the full artifact, its kind (Bloom or binary fuse), probes or arity, fingerprint width, budget,
+bits and the bound n_i log2(1/f_i) at its budget, with their ratio (the factor) per region and in all.
 
-Goals (table 2): on the demo at 1%, full <= 0.5 x plain Bloom, <= 0.85 x one threshold and <= 1.10 x
-ideal, all at F*; on the word corpora, full below plain Bloom at every target.
+Goals (table 2): on the demo at 1%, full <= 0.34 x plain Bloom, <= 0.85 x one threshold and <= 1.10 x
+ideal, all at F*; on the word corpora, full below plain Bloom and below the best plain static filter
+at every target; on hex keys, full <= 0.90 x plain Bloom at F*. Table 4: on the demo at 1%, backup
+bits <= 1.25 x the bound.
 """
 
 from __future__ import annotations
@@ -84,8 +95,9 @@ from tamis.flows.build import (
     write_package,
 )
 from tamis import verify
-from tamis.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
-from tamis.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys, word_count
+from tamis.baselines import StaticFilter, best_static_filter, clamped_ideal_bytes, ideal_bytes, plan_single_threshold
+from tamis.bloom import BloomFilter, KeyHashes, hash_keys, word_count
+from tamis.sizing import bloom_bits, bloom_hashes, lower_bound_bits
 from tamis.config import BuildConfig, load_config, with_overrides
 from tamis.corpus import Corpus, KeySet
 from tamis.demo import write_demo_corpus
@@ -97,7 +109,10 @@ from tamis.trees import score_batch
 
 import word_corpus  # benchmarks/word_corpus.py: this script's folder is on sys.path when it runs
 
-CORPORA = ("demo", "words", "words-by-key")
+CORPORA = ("demo", "words", "words-by-key", "hex")
+# The corpus of keys with no structure: random 128-bit digests as 32 hex digits, no counts.
+HEX_SIZE = (200_000, 1_000_000)
+HEX_SEED = 20261202
 DEFAULT_TARGETS = (0.001, 0.01, 0.05)
 # every corpus is built with the demo's config (as `tamis demo` does), only the target changes
 DEMO_CONFIG = resources.files("tamis.configs") / "demo.toml"
@@ -107,7 +122,11 @@ QUICK_DEMO = (20_000, 200_000)
 QUICK_MODEL = {"leaves": (15,), "learning_rates": (0.5,), "max_trees": 20}
 # The goals of the comparison, at equal measured FPR (see the docstring).
 GOAL_TARGET = 0.01
-GOAL_VS_BLOOM = 0.5
+GOAL_VS_BLOOM = 0.34
+# Keys with no structure: the artifact is a plain fingerprint filter with a header.
+GOAL_HEX_VS_BLOOM = 0.90
+# Backup filter bits against sum_i n_i log2(1/f_i) at the regions' budgets (table 4), on the demo at 1%.
+GOAL_BACKUP_VS_BOUND = 1.25
 GOAL_VS_ONE_THRESHOLD = 0.85
 GOAL_VS_IDEAL = 1.10
 # (b) at equal measured FPR is searched among plans at F* x 2^(j/4), j in this range: F*/4 to 4 F*.
@@ -129,12 +148,27 @@ def write_corpus(name: str, folder: Path, demo_size: tuple[int, int]) -> tuple[P
     """The members and non-members files of a corpus, written into `folder`."""
     if name == "demo":
         return write_demo_corpus(folder, members=demo_size[0], non_members=demo_size[1])
+    if name == "hex":
+        return write_hex_corpus(folder)
     members, nonmembers = word_corpus.write_word_corpus(folder)
     if name == "words-by-key":
         keys_only = folder / "foreign_word_keys.parquet"
         pl.read_parquet(nonmembers).select("key").write_parquet(keys_only)
         return members, keys_only
     return members, nonmembers
+
+
+def write_hex_corpus(folder: Path) -> tuple[Path, Path]:
+    """Members and non-members that are random 32-digit hex digests (distinct, seeded): nothing for
+    a model to learn, so the artifact can only be a plain filter with a header."""
+    folder.mkdir(parents=True, exist_ok=True)
+    members, non_members = HEX_SIZE
+    digests = np.random.default_rng(HEX_SEED).bytes(16 * (members + non_members))
+    keys = [digests[16 * i : 16 * i + 16].hex() for i in range(members + non_members)]
+    paths = folder / "hex_members.parquet", folder / "hex_non_members.parquet"
+    pl.DataFrame({"key": keys[:members]}).write_parquet(paths[0])
+    pl.DataFrame({"key": keys[members:]}).write_parquet(paths[1])
+    return paths
 
 
 @dataclass(frozen=True)
@@ -158,9 +192,10 @@ class Prepared:
         return len(self.corpus.heavy.keys)
 
 
-def prepare(name: str, folder: Path, demo_size: tuple[int, int], model: dict) -> Prepared:
+def prepare(name: str, folder: Path, demo_size: tuple[int, int], model: dict, regions: dict) -> Prepared:
     members, nonmembers = write_corpus(name, folder, demo_size)
-    config = with_overrides(load_config(Path(str(DEMO_CONFIG))), corpus={"members": members, "non_members": nonmembers}, model=model)
+    overrides = {"corpus": {"members": members, "non_members": nonmembers}, "model": model, "regions": regions}
+    config = with_overrides(load_config(Path(str(DEMO_CONFIG))), **overrides)
     corpus = read_corpus.fn(config)
     spec = default_feature_spec()
     started = time.perf_counter()
@@ -226,11 +261,8 @@ def probe_answers(probe_scores: np.ndarray, prepared: Prepared, boundaries, filt
     answers = np.zeros(len(probe_scores), dtype=bool)
     for index, region in enumerate(filters):
         mask = regions == index
-        if region.mode == "yes":
-            answers[mask] = True
-        elif region.mode == "bloom" and mask.any():
-            bloom = region.bloom(prepared.config.filters.hash_seed)
-            answers[mask] = bloom.query_hashes(prepared.probe_hashes.select(mask))
+        if mask.any():
+            answers[mask] = region.query_hashes(prepared.probe_hashes.select(mask), prepared.config.filters.hash_seed)
     return answers
 
 
@@ -294,6 +326,7 @@ class TargetResult:
     one: Measured | None = None
     full: Measured | None = None
     bloom_at_full: int | None = None
+    static_at_full: StaticFilter | None = None
     one_at_full: Measured | None = None
     ideal: float | None = None
     clamped_ideal: float | None = None
@@ -304,6 +337,14 @@ def refusal(prepared: Prepared, target: float) -> str:
     strata = verify.strata_of(prepared.corpus)
     needed = verify.needed_heldout_lookups(strata, target, prepared.config.gate.confidence)
     return f"refused (min_heldout): the held-out tail has {strata.heldout_lookups:,} lookups, {needed:,.0f} needed"
+
+
+def backup_row(region) -> dict:
+    """One region's backup filter for table 4: its kind, probes or arity, fingerprint width, members,
+    budget, stored bits and the bound n log2(1/f) at that budget."""
+    bound = lower_bound_bits(region.members, region.fpr_budget) if region.mode in ("bloom", "fuse") else 0.0
+    return {"kind": region.mode, "hashes": region.hashes, "width": region.width, "members": region.members,
+            "fpr": region.fpr_budget, "bits": 8 * region.nbytes, "bound": bound}
 
 
 def explain(prepared: Prepared, choice, plan, scores, full: Measured, filters, aim: float, reference: float | None) -> dict:
@@ -328,6 +369,7 @@ def explain(prepared: Prepared, choice, plan, scores, full: Measured, filters, a
         "rounding": filter_bytes - clamped_at_aim,
         "clamping": clamped_at_aim - ideal_at_aim,
         "aim_vs_measured": None if reference is None else ideal_at_aim - ideal_bytes(members, reference, plan.kl_bits, 0.0),
+        "backups": [backup_row(region) for region in filters],
     }
 
 
@@ -365,6 +407,7 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
     return dataclasses.replace(
         result,
         bloom_at_full=plain_bloom_bytes(members, reference),
+        static_at_full=best_static_filter(members, reference),
         one_at_full=cheapest_one_threshold(prepared, folder, choice.forest, scores, probe_scores, reference),
         ideal=ideal_bytes(members, reference, plan.kl_bits, choice.model_bytes),
         clamped_ideal=clamped_ideal_bytes(plan.member_counts, plan.nonmember_shares, reference, choice.model_bytes),
@@ -414,7 +457,10 @@ def goal_verdicts(r: TargetResult) -> str:
             f"full/ideal<={GOAL_VS_IDEAL}": r.full.bytes <= GOAL_VS_IDEAL * r.ideal,
         }
     elif r.corpus.startswith("words"):
-        checks = {"full<Bloom@F*": r.full.bytes < r.bloom_at_full, "full<Bloom@target (table 1)": r.full.bytes < r.bloom.bytes}
+        checks = {"full<Bloom@F*": r.full.bytes < r.bloom_at_full, "full<Bloom@target (table 1)": r.full.bytes < r.bloom.bytes,
+                  "full<static@F*": r.full.bytes < r.static_at_full.bytes}
+    elif r.corpus == "hex":
+        checks = {f"full/Bloom<={GOAL_HEX_VS_BLOOM}": r.full.bytes <= GOAL_HEX_VS_BLOOM * r.bloom_at_full}
     else:
         return ""
     return ", ".join(f"{name} {'met' if ok else 'MISSED'}" for name, ok in checks.items())
@@ -424,23 +470,27 @@ def equal_fpr_table(results: Sequence[TargetResult]) -> None:
     print()
     print("Table 2. At equal measured FPR F* (the full artifact's held-out rate, by lookups when there are counts)")
     print(
-        f"{'corpus':<13} {'target':>7} {'F*':>9} {'Bloom@F*':>10} {'one@F*':>10} {'its FPR':>9} {'full':>10} {'ideal@F*':>10} "
-        f"{'clamped@F*':>10} {'one/Bloom':>9} {'full/Bloom':>10} {'full/one':>8} {'full/ideal':>10} {'full/clamped':>12}  goals"
+        f"{'corpus':<13} {'target':>7} {'F*':>9} {'Bloom@F*':>10} {'static@F*':>16} {'one@F*':>10} {'its FPR':>9} {'full':>10} "
+        f"{'ideal@F*':>10} {'clamped@F*':>10} {'one/Bloom':>9} {'full/Bloom':>10} {'full/static':>11} {'full/one':>8} "
+        f"{'full/ideal':>10} {'full/clamped':>12}  goals"
     )
     for r in results:
         if r.refused or r.bloom_at_full is None:
             print(f"{r.corpus:<13} {r.target:>7g} {r.refused or 'no false positive measured: F* is 0, nothing to compare at'}")
             continue
-        one = r.one_at_full
+        one, static = r.one_at_full, r.static_at_full
+        static_text = f"{static.bytes:,} {static.kind}"
         print(
-            f"{r.corpus:<13} {r.target:>7g} {percent(r.full.rate):>9} {r.bloom_at_full:>10,} {count(one and one.bytes):>10} "
+            f"{r.corpus:<13} {r.target:>7g} {percent(r.full.rate):>9} {r.bloom_at_full:>10,} {static_text:>16} "
+            f"{count(one and one.bytes):>10} "
             f"{percent(one and one.rate):>9} {r.full.bytes:>10,} {r.ideal:>10,.0f} {r.clamped_ideal:>10,.0f} "
             f"{ratio(one and one.bytes, r.bloom_at_full):>9} {ratio(r.full.bytes, r.bloom_at_full):>10} "
-            f"{ratio(r.full.bytes, one and one.bytes):>8} "
+            f"{ratio(r.full.bytes, static.bytes):>11} {ratio(r.full.bytes, one and one.bytes):>8} "
             f"{ratio(r.full.bytes, r.ideal):>10} {ratio(r.full.bytes, r.clamped_ideal):>12}  {goal_verdicts(r)}"
         )
     print(
-        f"Bloom@F*: the formula's bytes at F*; one@F*: the smallest of {len(ONE_THRESHOLD_STEPS)} one-threshold filters "
+        f"Bloom@F*: the formula's bytes at F*; static@F*: the smaller of that Bloom filter and a binary fuse filter with\n"
+        f"2^-r <= F* (`tamis.baselines.best_static_filter`), no model; one@F*: the smallest of {len(ONE_THRESHOLD_STEPS)} one-threshold filters "
         "planned at F*/4 .. 4 F* whose measured FPR ('its FPR') is at most F*;\nideal@F*: n (log2(1/F*) - D) / ln 2 / 8 + "
         "model bytes; clamped@F*: the same regions' KKT budgets capped at 1 (the reachable ideal)"
     )
@@ -472,6 +522,34 @@ def diagnostics_table(results: Sequence[TargetResult]) -> None:
     )
 
 
+def backup_table(results: Sequence[TargetResult]) -> None:
+    print()
+    print("Table 4. The backup filters of the full artifact against the bound sum_i n_i log2(1/f_i) at their budgets f_i")
+    print(
+        f"{'corpus':<13} {'target':>7} {'region':>6} {'kind':<6} {'k/arity':>7} {'r':>3} {'members':>9} {'budget':>10} "
+        f"{'bits':>10} {'bound bits':>12} {'factor':>7}"
+    )
+    for r in results:
+        if r.refused:
+            continue
+        rows = r.details["backups"]
+        for index, row in enumerate(rows):
+            if row["kind"] not in ("bloom", "fuse"):
+                print(f"{r.corpus:<13} {r.target:>7g} {index:>6} {row['kind']:<6} {'-':>7} {'-':>3} {row['members']:>9,} {percent(row['fpr']):>10}")
+                continue
+            print(
+                f"{r.corpus:<13} {r.target:>7g} {index:>6} {row['kind']:<6} {row['hashes']:>7} {row['width'] or '-':>3} "
+                f"{row['members']:>9,} {percent(row['fpr']):>10} {row['bits']:>10,} {row['bound']:>12,.0f} {ratio(row['bits'], row['bound']):>7}"
+            )
+        bits, bound = sum(row["bits"] for row in rows), sum(row["bound"] for row in rows)
+        goal = ""
+        if r.corpus == "demo" and r.target == GOAL_TARGET:
+            goal = f"  backup/bound<={GOAL_BACKUP_VS_BOUND} {'met' if bits <= GOAL_BACKUP_VS_BOUND * bound else 'MISSED'}"
+        print(f"{r.corpus:<13} {r.target:>7g} {'all':>6} {'':<6} {'':>7} {'':>3} {'':>9} {'':>10} {bits:>10,} {bound:>12,.0f} {ratio(bits, bound):>7}{goal}")
+    print("k/arity: a Bloom filter's probes or a fuse filter's slots per key; r: fingerprint bits; factor: bits / bound")
+    print("(a Bloom filter at its optimum: 1/ln 2 = 1.443; bits include each array's rounding to whole 64-bit words)")
+
+
 # Command line ------------------------------------------------------------------------------------
 
 
@@ -500,14 +578,16 @@ def main(argv: Sequence[str] | None = None) -> None:
     parser.add_argument("--corpus", type=parse_corpora, default=CORPORA, help=f"comma-separated corpora (default {','.join(CORPORA)})")
     parser.add_argument("--demo-members", type=int, help="demo members (default 200,000; --quick 20,000)")
     parser.add_argument("--demo-non-members", type=int, help="demo non-members (default 2,000,000; --quick 200,000)")
+    parser.add_argument("--max-region-fpr", type=float, help="[regions] max_region_fpr for every build (default: the config's, no cap)")
     args = parser.parse_args(argv)
     default_size = QUICK_DEMO if args.quick else (200_000, 2_000_000)
     demo_size = (args.demo_members or default_size[0], args.demo_non_members or default_size[1])
     model = QUICK_MODEL if args.quick else {}
+    regions = {"max_region_fpr": args.max_region_fpr}
     results = []
     with tempfile.TemporaryDirectory(prefix="tamis-compare-") as scratch:
         for name in args.corpus:
-            prepared = prepare(name, Path(scratch) / name, demo_size, model)
+            prepared = prepare(name, Path(scratch) / name, demo_size, model, regions)
             for target in args.targets:
                 folder = Path(scratch) / name / f"target-{target:g}"
                 folder.mkdir()
@@ -515,6 +595,7 @@ def main(argv: Sequence[str] | None = None) -> None:
     as_built_table(results)
     equal_fpr_table(results)
     diagnostics_table(results)
+    backup_table(results)
 
 
 if __name__ == "__main__":

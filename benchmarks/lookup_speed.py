@@ -183,9 +183,9 @@ def profile(loaded: MembershipFilter, keys: list, repeat: int) -> dict[str, Timi
         def answers() -> None:
             compiled.answer_regions(regions, hashes.low, hashes.high, path.blob, np.empty(len(keys), dtype=bool))
     return parts | {
-        f"hashing ({hashed.mean():.0%} of keys in Bloom regions)": best_of(
+        f"hashing ({hashed.mean():.0%} of keys in regions with a filter)": best_of(
             repeat, lambda: hashes_where(packed, hashed, tables.seed)),
-        "region answers (probes)": best_of(repeat, answers),
+        "region answers (Bloom probes, fuse slot reads)": best_of(repeat, answers),
     }
 
 

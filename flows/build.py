@@ -37,7 +37,6 @@ from prefect.utilities.annotations import quote
 
 from tamis import corpus as corpus_stage
 from tamis import publish, report, report_page, verify
-from tamis.bloom import sized_fpr
 from tamis.booster import compile_trees
 from tamis.config import BuildConfig, require_paths
 from tamis.drift import Drift, measure_drift
@@ -53,6 +52,7 @@ from tamis.provenance import build_provenance
 from tamis.query import region_of
 from tamis.regions import RegionPlan, plan_regions
 from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
+from tamis.sizing import sized_rate
 from tamis.trees import Forest, score_batch
 
 # The largest rate the corrected plan may be made for (plan_regions takes rates below 1).
@@ -171,7 +171,7 @@ def score_chunk(chunk: Chunk, forest: Forest) -> np.ndarray:
 
 @_stage("insertion")
 def fill_chunk(chunk: Chunk, filters: list[RegionFilter], hash_seed: int) -> list[np.ndarray]:
-    """The bits of one chunk of members (chunk.regions holds their regions)."""
+    """What one chunk of members gives each region's filter (chunk.regions holds their regions)."""
     return chunk_words(filters, chunk.items, chunk.regions, hash_seed)
 
 
@@ -247,7 +247,7 @@ def choose_regions(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, aim: f
 
     def plan_for(rate: float):
         plan = plan_regions(scores["members"], nonmember_scores, weights, rate, config.regions)
-        sized = [sized_fpr(int(n), float(f)) for n, f in zip(plan.member_counts, plan.fprs)]
+        sized = [sized_rate(c.kind, int(n), c.fpr) for n, c in zip(plan.member_counts, plan.filters)]
         at = partial(region_of, boundaries=plan.boundaries)
         estimate = verify.planned_rate(sized, at(scores["heavy"]), at(scores["check"]), verify.strata_of(corpus), corpus.check.counts)
         return plan, estimate
@@ -262,20 +262,21 @@ def spare_filters(corpus, member_scores: np.ndarray, heavy_scores: np.ndarray, p
     maybe (`tamis.hot_keys`)."""
     regions = region_of(member_scores, plan.boundaries)
     seed = config.filters.hash_seed
-    return spare_heavy_keys(empty_filters(regions, plan.fprs, seed), corpus.members, regions, corpus.heavy.keys,
+    return spare_heavy_keys(empty_filters(regions, plan.filters, seed), corpus.members, regions, corpus.heavy.keys,
                             corpus.heavy.counts, region_of(heavy_scores, plan.boundaries), seed, config.filters.variants)
 
 
 def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, config: BuildConfig,
                  empty: list[RegionFilter] | None = None) -> list[RegionFilter]:
-    """One filter per region holding exactly its members: the bits of each chunk of members, ORed
-    into `empty` (the plan's filters with their bits clear when none are given)."""
+    """One filter per region holding exactly its members: the parts of each chunk of members merged
+    into `empty` (the plan's filters, holding no member yet, when none are given): Bloom bits ORed,
+    fuse filters solved from all their members' hashes."""
     regions = region_of(member_scores, plan.boundaries)
-    filters = empty if empty is not None else empty_filters(regions, plan.fprs, config.filters.hash_seed)
+    filters = empty if empty is not None else empty_filters(regions, plan.filters, config.filters.hash_seed)
     size = config.compute.chunk_keys
     chunks = [Chunk(keys, part) for keys, part in zip(chunks_of(corpus.members, size), chunks_of(regions, size))]
     words = run_chunks(fill_chunk, chunks, filters, config.filters.hash_seed)
-    return merge_words(filters, words)
+    return merge_words(filters, words, config.filters.hash_seed)
 
 
 @dataclass(frozen=True)

@@ -1,6 +1,6 @@
 """The binary artifact container: a bounded msgpack header and aligned, checksummed numeric sections.
 
-Layout of format 1.0 (all integers little-endian):
+Layout of format 2.0, the same as 1.0 (all integers little-endian):
 
     offset  size  field
     ------  ----  -----------------------------------------------------------------------------
@@ -53,6 +53,7 @@ from tamis.format import (
     MAX_HEADER_DEPTH,
     MAX_SECTIONS,
     PREAMBLE,
+    READABLE_MAJORS,
 )
 
 
@@ -235,9 +236,10 @@ def _read_preamble(path: Path, data: bytes) -> tuple[tuple[int, int], int, int]:
     if size < PREAMBLE.size:
         raise ArtifactError(f"{path}: truncated at byte {size} (the fixed preamble needs {PREAMBLE.size})")
     _, major, minor, header_length, header_sum = PREAMBLE.unpack_from(data, 0)
-    if major != FORMAT_MAJOR:
+    if major not in READABLE_MAJORS:
         raise ArtifactError(
-            f"{path}: format {major}.{minor} not supported (this reader reads {FORMAT_MAJOR}.x); "
+            f"{path}: format {major}.{minor} not supported (this reader reads "
+            f"{' and '.join(f'{m}.x' for m in READABLE_MAJORS)}); "
             "use a tamis release that knows this format"
         )
     if header_length > MAX_HEADER_BYTES:

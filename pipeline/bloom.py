@@ -1,16 +1,12 @@
-"""Bloom filters: the sizing formulas and the bit-array structure, in one place.
+"""Bloom filters: the bit-array structure (its sizing formulas are in `tamis.sizing`).
 
 Sources: B. H. Bloom, "Space/time trade-offs in hash coding with allowable errors", CACM 13(7), 1970,
 and the standard analysis that follows it; positions by enhanced double hashing from P. C. Dillinger
 and P. Manolios, "Bloom filters in probabilistic verification", FMCAD 2004.
-
-The formulas here are estimates: they size filters and drive the region plan. The false-positive
-rate a user is promised is always the one measured on held-out non-members (see `tamis.verify`).
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -19,65 +15,8 @@ import xxhash
 
 from tamis.format import MAX_BLOOM_BITS, MAX_BLOOM_HASHES, SEED_LIMIT, WORD_BITS
 
-LN2 = math.log(2.0)
-
-# A Bloom filter sized optimally needs 1/ln 2 = 1.4427 times the information-theoretic lower bound
-# of log2(1/f) bits per key: at f = 1% that is 9.585 bits per key against 6.644.
-BLOOM_OVERHEAD = 1.0 / LN2
-
-
-def bloom_bits(n: int, fpr: float) -> int:
-    """Bits m of an optimally sized Bloom filter for n keys at false-positive rate fpr.
-
-    m = -n ln f / (ln 2)^2, rounded up (Bloom 1970, standard analysis). At n = 1,000,000 and f = 1%
-    that is 9,585,059 bits (1.14 MiB). A rate of 1 or more needs no filter (every key answers yes).
-    """
-    if not 0.0 < fpr:
-        raise ValueError(f"false-positive rate must be > 0, got {fpr}")
-    if n == 0 or fpr >= 1.0:
-        return 0
-    return max(1, math.ceil(-n * math.log(fpr) / (LN2 * LN2)))
-
-
-def bloom_hashes(m: int, n: int) -> int:
-    """Number of probes k = (m/n) ln 2, rounded to the nearest integer, at least 1.
-
-    At 9.585 bits per key this gives k = 7 (6.64 before rounding).
-    """
-    if n == 0 or m == 0:
-        return 0
-    return max(1, round(m / n * LN2))
-
-
-def bloom_fpr(m: int, n: int, k: int) -> float:
-    """Expected false-positive rate (1 - e^{-k n / m})^k of a filter with m bits, n keys, k probes.
-
-    At m/n = 10 bits per key and k = 7 this is 0.819%; at 9.585 bits and k = 7 it is 1.003%.
-    An empty filter (n = 0) answers no to everything; a missing one (m = 0) answers yes.
-    """
-    if m == 0:
-        return 1.0
-    if n == 0:
-        return 0.0
-    return (1.0 - math.exp(-k * n / m)) ** k
-
-
-def sized_fpr(n: int, fpr: float) -> float:
-    """The formula rate of the filter `bloom_bits` and `bloom_hashes` size for n keys at budget fpr.
-
-    Whole bits and a whole number of probes put it a little above the budget: 1.0039% for 1%,
-    1.0054% at 5%, 1.0076% at 1.1% (k = 7 where 6.5 would be optimal). Budgets of 1 or more and
-    empty filters keep their budget (a "yes" region answers every key, a "no" region none).
-    """
-    if n == 0 or fpr >= 1.0:
-        return min(fpr, 1.0)
-    bits = bloom_bits(n, fpr)
-    return bloom_fpr(bits, n, bloom_hashes(bits, n))
-
-
-def lower_bound_bits(n: int, fpr: float) -> float:
-    """Information-theoretic minimum n log2(1/f) bits for any filter of n keys at rate f."""
-    return 0.0 if fpr >= 1.0 else n * math.log2(1.0 / fpr)
+# The sizing formulas live with every other kind's in tamis.sizing; importers of this module use them too.
+from tamis.sizing import BLOOM_OVERHEAD, LN2, bloom_bits, bloom_fpr, bloom_hashes, lower_bound_bits  # noqa: F401
 
 
 # ---------------------------------------------------------------------------------------------------

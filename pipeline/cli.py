@@ -151,6 +151,13 @@ def strata_lines(strata: dict | None) -> list[str]:
     return lines
 
 
+def static_text(baseline: dict) -> list[str]:
+    """The best plain static filter's line, when the report has one (reports before it do not)."""
+    if not baseline.get("static_kind"):
+        return []
+    return [f"  best plain static filter ({baseline['static_kind']}) {baseline['static_bytes']:,} bytes: ratio {baseline['static_ratio']:.3f}"]
+
+
 def summary_text(report: dict, folder: Path) -> str:
     size, base, held = report["size"], report["baseline"], report["heldout"]
     status = f"published version {report['version']}" if report["gate"]["passed"] else "REFUSED by the gate"
@@ -162,6 +169,7 @@ def summary_text(report: dict, folder: Path) -> str:
         f"filters {size['filter_bytes']:,})",
         f"  plain Bloom filter's bits at the target (no header, no margin for the measurement) "
         f"{base['bloom_bytes']:,} bytes: ratio {base['ratio']:.3f}",
+        *static_text(base),
         f"  FPR {held['fpr']:.4%} (upper bound {held['fpr_upper']:.4%} at {held['confidence']:.0%}), "
         f"target {report['target_fpr']:.4%}, aim {report['aim_fpr']:.4%}",
         *strata_lines(report.get("strata")),
@@ -315,13 +323,14 @@ def show_text(path: Path, info: dict) -> str:
         f"  built {provenance.get('built_at')} by tamis {provenance.get('tool_version')} (build {provenance.get('build_id')})",
         f"  corpus digest {provenance.get('corpus_digest')}, config digest {provenance.get('config_digest')}",
         f"  model: {forest.get('trees')} trees over {forest.get('features')} features",
-        "  region  scores from .. to          members  mode   bits        probes  budget",
+        "  region  scores from .. to          members  kind   bits        probes  width  budget",
     ]
     bounds = [None, *info.get("boundaries", []), None]
     for i, region in enumerate(info.get("regions", [])):
         span = f"{'-inf' if bounds[i] is None else bounds[i]} .. {'+inf' if bounds[i + 1] is None else bounds[i + 1]}"
         lines.append(
-            f"  {i:<6}  {span:<24} {region['members']:>7}  {region['mode']:<5}  {region['bits']:>10}  {region['hashes']:>6}  {region['fpr_budget']:.3%}"
+            f"  {i:<6}  {span:<24} {region['members']:>7}  {region['mode']:<5}  {region['bits']:>10}  {region['hashes']:>6}  "
+            f"{region.get('width', '-'):>5}  {region['fpr_budget']:.3%}"
         )
     measured = info.get("measured")
     if measured:

@@ -12,7 +12,7 @@ features do: a single key is one call with two arguments, (its xxh3-128 digest f
 bytes, the tables). The tables hold, 8-byte aligned, a directory of int64 (feature count, bias,
 then the byte offset and element count of each part) and the parts in `PARTS` order.
 
-Region kinds: the region table has one row per region, (kind, first word, p0, p1); `_region_hit`
+Region kinds: the region table has one row per region, (kind, first word, p0 .. p4); `_region_hit`
 is the one place that dispatches on the kind, so a new filter kind is one jitted function there and
 one row layout (`tamis.query` writes the rows).
 
@@ -31,9 +31,11 @@ import numpy as np
 
 NUMPY_ONLY_VARIABLE = "TAMIS_NUMPY_ONLY"
 
-# Region kinds in the region table (rows: kind, first word, p0, p1).
-REGION_NO, REGION_YES, REGION_BLOOM = 0, 1, 2
-REGION_ROW = 4
+# Region kinds in the region table (rows: kind, first word, then the kind's parameters p0 .. p4:
+# Bloom bits, probes; fuse arity, width, seed key (its uint64 bits as int64), segment length, segment
+# count; zero where a kind has fewer).
+REGION_NO, REGION_YES, REGION_BLOOM, REGION_FUSE = 0, 1, 2, 3
+REGION_ROW = 7
 
 # The parts of the query tables, in order, with their dtypes.
 PARTS = (
@@ -233,6 +235,40 @@ if ENABLED:
                 return False
         return True
 
+    _MIX_1 = np.uint64(0xBF58476D1CE4E5B9)
+    _MIX_2 = np.uint64(0x94D049BB133111EB)
+
+    @_jit
+    def _mix64(z):
+        """SplitMix64's finaliser, as tamis.fuse._mix64 (multiplications wrap modulo 2^64)."""
+        z ^= z >> np.uint64(30)
+        z *= _MIX_1
+        z ^= z >> np.uint64(27)
+        z *= _MIX_2
+        return z ^ (z >> np.uint64(31))
+
+    @_jit
+    def _fuse_hit(low, high, words, arity, width, seed_key, segment_length, segment_count):
+        """The XOR of the key's slots equals its fingerprint; slots, fingerprint and packed reads
+        exactly as tamis.fuse.key_slots and tamis.fuse.read_slots compute them (all in uint64)."""
+        r = np.uint64(width)
+        mask = (np.uint64(1) << r) - np.uint64(1)
+        length = np.uint64(segment_length)
+        p = _mix64(low ^ seed_key)
+        q = _mix64(high ^ seed_key)
+        start = ((p >> np.uint64(32)) * np.uint64(segment_count)) >> np.uint64(32)
+        combined = p & mask
+        for j in range(arity):
+            slot = (start + np.uint64(j)) * length + ((q >> np.uint64(16 * j)) & (length - np.uint64(1)))
+            bit = slot * r
+            index = bit >> np.uint64(6)
+            shift = bit & np.uint64(63)
+            value = words[index] >> shift
+            if shift + r > np.uint64(64):  # the slot runs on into the next word
+                value |= words[index + np.uint64(1)] << (np.uint64(64) - shift)
+            combined ^= value & mask
+        return combined == np.uint64(0)
+
     @_jit
     def _region_hit(row, words, low, high):
         """The answer of the region of table row `row` for a key whose xxh3-128 halves are low, high:
@@ -240,6 +276,8 @@ if ENABLED:
         kind = row[0]
         if kind == REGION_BLOOM:
             return _bloom_hit(low, high, words[row[1] :], row[2], row[3])
+        if kind == REGION_FUSE:
+            return _fuse_hit(low, high, words[row[1] :], row[2], row[3], np.uint64(row[4]), row[5], row[6])
         return kind == REGION_YES
 
     # --- the kernels the query path calls ----------------------------------------------------------

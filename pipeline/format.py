@@ -21,8 +21,11 @@ import numpy as np
 # The first byte has the high bit set and the magic ends in CR LF, so a 7-bit or newline-translating
 # copy is caught at once (common practice for binary formats).
 MAGIC = b"\x89TAMIS\r\n"
-FORMAT_MAJOR = 1
+# Written as 2.0: a region may hold a binary fuse filter, which a 1.x reader cannot ignore (it would
+# have to answer its keys). Files of every major in READABLE_MAJORS are still read.
+FORMAT_MAJOR = 2
 FORMAT_MINOR = 0
+READABLE_MAJORS = (1, 2)
 # magic, major, minor, header length, header checksum, 8 reserved bytes (zero), all little-endian.
 PREAMBLE = struct.Struct("<8sHHIQ8x")
 # Sections start at multiples of 64 bytes: a cache line, and a multiple of every dtype's size.
@@ -43,10 +46,13 @@ ALLOWED_DTYPES = frozenset({"|u1", "|i1", "<u2", "<i2", "<u4", "<i4", "<u8", "<i
 # ---------------------------------------------------------------------------------------------------
 
 HEADER_KIND = "membership-filter"
-# How keys become bit positions (tamis.bloom); a loader refuses any other description.
+# How keys become Bloom bit positions (tamis.bloom; a fuse region reads the same xxh3-128 value,
+# tamis.fuse); a loader refuses any other description.
 HASHING = {"function": "xxh3_128", "positions": "enhanced-double-hashing", "bit_order": "lsb0-u64-le"}
-# How a region answers: by its Bloom filter, always yes, always no.
-REGION_MODES = ("bloom", "yes", "no")
+# How a region answers: by its Bloom filter, by its binary fuse filter (from 2.0), always yes, always
+# no; the modes a file of each major may hold.
+REGION_MODES = ("bloom", "fuse", "yes", "no")
+REGION_MODES_OF_MAJOR = {1: ("bloom", "yes", "no"), 2: REGION_MODES}
 # Seeds of xxh3 are 64-bit.
 SEED_LIMIT = 2**64
 

@@ -9,8 +9,10 @@ every position (they are taken mod m), so each variant is a fresh draw of that l
 region's heavy keys; the variant with the fewest heavy false-positive lookups is kept (the
 smallest on a tie). Nothing else changes: the bit count is already part of every region's entry
 in the artifact, so the format and the loader are untouched, and a variant costs at most one
-64-bit word more than the first. Light keys take no part in the choice, so the tail's sample stays
-unbiased.
+64-bit word more than the first. A region with a binary fuse filter draws its variants by the
+filter's own stored seed instead (start seeds j x 2^32, `FUSE_SEED_STRIDE`, so that no variant's
+construction retries into another's seeds): the same bytes, a fresh draw of every slot and
+fingerprint. Light keys take no part in the choice, so the tail's sample stays unbiased.
 
 The gain: a region whose heavy keys carry weight W is a false positive for about W f of it with
 one variant; keeping the best of m independent draws leaves the least of m such sums, so the build
@@ -26,6 +28,11 @@ import numpy as np
 
 from tamis.bloom import BloomFilter, hash_keys
 from tamis.filters import RegionFilter
+from tamis.fuse import build_fuse
+
+# A fuse region's variant j starts its construction at seed j x this: a failed seed retries the
+# next one, and 2^32 tries lie far beyond any construction's (tamis.fuse.SEEDS_PER_SIZE x sizes).
+FUSE_SEED_STRIDE = 1 << 32
 
 
 @dataclass(frozen=True)
@@ -55,6 +62,16 @@ def heavy_false_positive_lookups(region: RegionFilter, bits: int, members, heavy
     return int(counts[bloom.query_hashes(heavy)].sum())
 
 
+def fuse_false_positive_lookups(region: RegionFilter, seed: int, members, heavy, counts: np.ndarray, hash_seed: int) -> int:
+    """Heavy lookups answered maybe by a region's fuse filter built from start seed `seed` (the
+    filters stage builds the same filter from it); a region whose construction fails every try
+    gets a Bloom filter instead, so its variant is priced as that filter."""
+    fuse = build_fuse(members, region.width, region.hashes, hash_seed, seed)
+    if fuse is None:
+        return heavy_false_positive_lookups(region, region.bits, members, heavy, counts, hash_seed)
+    return int(counts[fuse.query_hashes(heavy)].sum())
+
+
 def spare_heavy_keys(
     filters: Sequence[RegionFilter],
     member_keys: Sequence[bytes],
@@ -65,20 +82,28 @@ def spare_heavy_keys(
     hash_seed: int,
     variants: int,
 ) -> Sparing:
-    """Per Bloom region with heavy keys, the bit count of `variants` that spares them most."""
+    """Per region with a filter and heavy keys, the variant of `variants` that spares them most: a
+    Bloom filter's bit count, a fuse filter's start seed."""
     chosen, first, best = [], 0, 0
     for index, region in enumerate(filters):
         in_region = heavy_regions == index
-        if region.mode != "bloom" or not in_region.any():
+        if region.mode not in ("bloom", "fuse") or not in_region.any():
             chosen.append(region)
             continue
         members = hash_keys(_picked(member_keys, member_regions == index), hash_seed)
         heavy = hash_keys(_picked(heavy_keys, in_region), hash_seed)
         counts = heavy_counts[in_region]
-        costs = [heavy_false_positive_lookups(region, region.bits + j, members, heavy, counts, hash_seed) for j in range(variants)]
+        if region.mode == "fuse":
+            costs = [fuse_false_positive_lookups(region, j * FUSE_SEED_STRIDE, members, heavy, counts, hash_seed)
+                     for j in range(variants)]
+        else:
+            costs = [heavy_false_positive_lookups(region, region.bits + j, members, heavy, counts, hash_seed) for j in range(variants)]
         pick = int(np.argmin(costs))
         first += costs[0]
         best += costs[pick]
-        bits = region.bits + pick
-        chosen.append(replace(region, bits=bits, words=BloomFilter.empty(bits, region.hashes, hash_seed).words))
+        if region.mode == "fuse":
+            chosen.append(replace(region, seed=pick * FUSE_SEED_STRIDE))
+        else:
+            bits = region.bits + pick
+            chosen.append(replace(region, bits=bits, words=BloomFilter.empty(bits, region.hashes, hash_seed).words))
     return Sparing(chosen, variants, first, best)

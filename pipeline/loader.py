@@ -7,8 +7,8 @@
     bans.contains_many(frame["handle"])         # a polars String or Binary column works too
 
 A key is answered the way the build inserted it, by the query path (`tamis.query`): features ->
-integer score -> region by the integer boundaries -> that region's answer ("yes", "no", or its
-Bloom filter), on the numpy reference or the compiled path (`answer_path`, `using`). Every check
+integer score -> region by the integer boundaries -> that region's answer ("yes", "no", its Bloom
+filter or its binary fuse filter), on the numpy reference or the compiled path (`answer_path`, `using`). Every check
 runs when the file is opened; any file that cannot be used raises FilterLoadError, and nothing
 stored in it is ever executed.
 
@@ -45,7 +45,8 @@ from tamis import store
 from tamis.artifact import ArtifactError, check_artifact, load_artifact
 from tamis.bloom import BloomFilter
 from tamis.features import feature_layout
-from tamis.format import HASHING, HEADER_KIND, REGION_MODES
+from tamis.format import HASHING, HEADER_KIND, REGION_MODES_OF_MAJOR
+from tamis.fuse import FuseFilter
 from tamis.query import (
     CompiledPath,
     Constant,
@@ -277,22 +278,27 @@ def _boundaries(path: Path, header: dict) -> tuple[int, ...]:
     return tuple(listed)
 
 
-def _region(path: Path, index: int, entry: Any, sections: dict, seed: int) -> RegionAnswer:
-    if not isinstance(entry, dict) or entry.get("mode") not in REGION_MODES:
+def _region(path: Path, index: int, entry: Any, sections: dict, seed: int, major: int) -> RegionAnswer:
+    modes = REGION_MODES_OF_MAJOR[major]
+    if not isinstance(entry, dict) or entry.get("mode") not in modes:
         mode = entry.get("mode") if isinstance(entry, dict) else entry
-        raise FilterLoadError(f"{path}: region {index} has unknown mode {mode!r} (known: {list(REGION_MODES)})")
-    if entry["mode"] != "bloom":
-        return Constant(entry["mode"] == "yes")
+        raise FilterLoadError(f"{path}: region {index} has unknown mode {mode!r} (format {major}.x knows: {list(modes)})")
+    mode = entry["mode"]
+    if mode in ("yes", "no"):
+        return Constant(mode == "yes")
     name = entry.get("section")
     if not isinstance(name, str) or name not in sections:
         raise FilterLoadError(f"{path}: region {index} names section {name!r}, which the file does not hold")
-    if type(entry.get("bits")) is not int or type(entry.get("hashes")) is not int:
-        raise FilterLoadError(f"{path}: region {index} needs integer 'bits' and 'hashes'")
+    fields = ("bits", "hashes") if mode == "bloom" else ("hashes", "width", "seed", "segment_length", "segment_count")
+    if any(type(entry.get(field)) is not int for field in fields):
+        raise FilterLoadError(f"{path}: region {index} in mode {mode!r} needs integer {', '.join(map(repr, fields))}")
     try:
-        bloom = BloomFilter.from_words(sections[name], entry["bits"], entry["hashes"], seed)
+        if mode == "bloom":
+            return BloomFilter.from_words(sections[name], entry["bits"], entry["hashes"], seed)
+        return FuseFilter.from_words(sections[name], entry["hashes"], entry["width"], entry["seed"],
+                                     entry["segment_length"], entry["segment_count"], seed)
     except ValueError as error:
         raise FilterLoadError(f"{path}: region {index}: {error}") from error
-    return bloom
 
 
 def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict, answer_path: str) -> MembershipFilter:
@@ -319,7 +325,7 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict, a
             f"{path}: {len(boundaries)} boundaries make {len(boundaries) + 1} regions, "
             f"the header lists {len(entries)}"
         )
-    regions = tuple(_region(path, i, entry, sections, seed) for i, entry in enumerate(entries))
+    regions = tuple(_region(path, i, entry, sections, seed, version[0]) for i, entry in enumerate(entries))
     tables = QueryTables(layout, forest, boundaries, regions, seed)
     return MembershipFilter(path, f"{version[0]}.{version[1]}", header, tables, answer_path).using(answer_path)
 

@@ -8,8 +8,11 @@ Header (the container's meta map, see `tamis.artifact`; FORMAT.md specifies ever
     forest        `Forest.meta()`; the forest's arrays are the "forest.*" sections
     boundaries    k - 1 ascending integer scores; region i holds boundaries[i-1] <= s < boundaries[i]
     regions       k maps {mode, bits, hashes, members, fpr_budget, section}; section names the
-                  uint64 bit array of a "bloom" region and is None for "yes" and "no"
-    hash          {function, positions, bit_order, seed}: how keys become bit positions
+                  uint64 array of a "bloom" or "fuse" region and is None for "yes" and "no". A
+                  "fuse" region (format 2.0 on) adds {width, seed, segment_length, segment_count}
+                  and its hashes is its arity (3 or 4); see `tamis.fuse` for how it is read
+    hash          {function, positions, bit_order, seed}: how keys become Bloom bit positions
+                  (a fuse region derives its slots from the same xxh3_128 value, `tamis.fuse`)
     measured      the held-out figures once verification has run, None before
 
 A key is answered by: features -> integer score -> region by the boundaries -> that region's filter.
@@ -46,9 +49,15 @@ def _boundary_list(boundaries: Sequence[int] | np.ndarray) -> list[int]:
 
 
 def _region_entry(index: int, region: RegionFilter, hash_seed: int) -> dict[str, Any]:
+    fuse_fields = {}
     if region.mode == "bloom":
         region.bloom(hash_seed)  # checks bits, probes and word count agree
         section = filter_section_name(index)
+    elif region.mode == "fuse":
+        fuse = region.fuse(hash_seed)  # checks arity, width, layout and word count agree
+        section = filter_section_name(index)
+        fuse_fields = {"width": fuse.width, "seed": fuse.seed, "segment_length": fuse.segment_length,
+                       "segment_count": fuse.segment_count}
     elif region.mode in ("yes", "no"):
         if region.words.size:
             raise ValueError(f"region {index} is in mode {region.mode!r} but carries {region.words.size} words")
@@ -62,6 +71,7 @@ def _region_entry(index: int, region: RegionFilter, hash_seed: int) -> dict[str,
         "members": region.members,
         "fpr_budget": float(region.fpr_budget),
         "section": section,
+        **fuse_fields,
     }
 
 
@@ -84,7 +94,7 @@ def package_artifact(
     regions = [_region_entry(i, region, hash_seed) for i, region in enumerate(region_filters)]
     sections = dict(forest.sections())
     for index, region in enumerate(region_filters):
-        if region.mode == "bloom":
+        if region.mode in ("bloom", "fuse"):
             sections[filter_section_name(index)] = region.words
     header = {
         "kind": HEADER_KIND,

@@ -18,7 +18,8 @@ place that chooses between them:
   is one kernel call. tests/test_compiled.py checks every step and answer against the reference,
   bit for bit.
 
-Region answers: a region is a `Constant` ("yes" or "no") or a `tamis.bloom.BloomFilter`. Each kind
+Region answers: a region is a `Constant` ("yes" or "no"), a `tamis.bloom.BloomFilter` or a
+`tamis.fuse.FuseFilter`. Each kind
 gives the numpy path `hashed` (does it need the key's hash), `query_hashes(hashes)` (a batch) and
 `contains(key)` (one key), and the compiled path one row of its region table (`_kernel_region`)
 answered by one jitted function (`tamis.compiled._region_hit`). A new filter kind plugs in there.
@@ -38,6 +39,8 @@ import xxhash
 
 from tamis import compiled
 from tamis.bloom import BloomFilter, KeyHashes, hash_slices
+from tamis.fuse import FuseFilter
+from tamis.fuse import seed_key as seed_key_of
 from tamis.features import FeatureLayout, featurize_columns, featurize_one
 from tamis.trees import Forest, score_columns, score_values
 
@@ -69,7 +72,7 @@ class Constant:
         return self.answer
 
 
-RegionAnswer = Constant | BloomFilter
+RegionAnswer = Constant | BloomFilter | FuseFilter
 
 
 @dataclass(frozen=True, eq=False)
@@ -258,17 +261,22 @@ _NO_WORDS = np.zeros(0, dtype=np.uint64)
 
 
 def _kernel_region(region: RegionAnswer) -> tuple[list[int], np.ndarray]:
-    """(kind, p0, p1) and the words of one region, for a row of the compiled path's region table."""
+    """(kind, p0, ...) and the words of one region, for a row of the compiled path's region table
+    (`tamis.compiled.REGION_ROW` entries with the first word; the unused ones are 0)."""
     if isinstance(region, BloomFilter):
         return [compiled.REGION_BLOOM, region.bits, region.hashes], region.words
-    return [compiled.REGION_YES if region.answer else compiled.REGION_NO, 0, 0], _NO_WORDS
+    if isinstance(region, FuseFilter):
+        seed_key = int(np.uint64(seed_key_of(region.seed)).view(np.int64))  # its 64 bits, as the int64 table holds them
+        return [compiled.REGION_FUSE, region.arity, region.width, seed_key, region.segment_length,
+                region.segment_count], region.words
+    return [compiled.REGION_YES if region.answer else compiled.REGION_NO], _NO_WORDS
 
 
 def _kernel_tables(t: QueryTables) -> np.ndarray:
     rows, words, first_word = [], [], 0
     for region in t.regions:
         (kind, *params), region_words = _kernel_region(region)
-        rows.append([kind, first_word, *params])
+        rows.append([kind, first_word, *params] + [0] * (compiled.REGION_ROW - 2 - len(params)))
         words.append(region_words)
         first_word += len(region_words)
     levels = t.forest._levels

@@ -10,11 +10,14 @@ Learned Bloom Filters", ICLR 2021), in four pure steps:
 3. `best_partition`: group consecutive segments into k regions maximising the KL divergence
    D = sum_i G_i log2(G_i / H_i) between the region-level member and non-member shares, by an exact
    dynamic programme over segments.
-4. `allocate_fprs`: for fixed regions, the budgets minimising the backup space
-   sum_i n G_i log2(1 / f_i) subject to sum_i H_i f_i <= F are f_i = min(1, c G_i / H_i) (KKT).
+4. `tamis.budgets.choose_filters`: for fixed regions, each region's filter kind (none, Bloom, or
+   a binary fuse filter of an integer fingerprint width) and budget f_i, minimising the filters'
+   real bytes subject to sum_i H_i f_i <= F (and f_i <= max_region_fpr), exactly.
 
-Without clamping (every f_i < 1) the backup space is n (log2(1/F) - D) bits of lower bound, times
-the Bloom constant 1/ln 2: every bit of divergence saves one bit per member.
+With Bloom filters only and no clamping (every f_i < 1) the budgets are f_i = c G_i / H_i (KKT,
+`tamis.budgets.allocate_fprs`) and the backup space is n (log2(1/F) - D) bits of lower bound, times
+the Bloom constant 1/ln 2: every bit of divergence saves one bit per member; a fingerprint filter
+pays a smaller constant (about 1.08 to 1.25) on a whole number of bits per member instead.
 `plan_regions` runs the four steps for every k up to `RegionSettings.max_regions` and keeps the k
 with the fewest total bytes (backup filters plus a fixed cost per region).
 
@@ -29,7 +32,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tamis.bloom import bloom_bits
+from tamis.budgets import FILTER_KINDS, FilterChoice, check_shares, choose_filters, expected_fpr
 from tamis.query import region_of
 
 # The dynamic programme sweeps the (start, end) table in blocks of end columns. A block holds about
@@ -50,19 +53,32 @@ class RegionSettings:
         `benchmarks/regions_speed.py` (200,000 members, 500,000 validation keys): at 1,000 the plan
         is within 0.2% of the bytes at 10,000 and 1% smaller than at 200, and takes about 0.1 s.
     region_overhead_bytes: the fixed artifact cost of one region, charged when choosing k: its
-        boundary (8 bytes), its filter's small header fields (mode, bits, probes, members, budget:
-        about 40 bytes) and alignment padding; 64 is a round estimate of that sum.
+        boundary (8 bytes) and its header entry (mode, members, budget: about 40 bytes); 64 is a
+        round estimate. A region's filter section is priced with the filter (`tamis.sizing`).
+    max_region_fpr: the largest budget any region may get. A region at f = 1 answers yes for every
+        key that scores there, so keys unlike the validation sample that score like members pass
+        at that rate; a cap below 1 gives every region with members a filter (it costs bytes:
+        README, "Capping a region's rate").
+    filter_kinds: the backup filter kinds a region may get: "bloom" (any rate) and "fuse" (binary
+        fuse filters, rates 2^-r); the plan picks per region whichever costs fewer bytes.
     """
 
     max_regions: int = 6
     segments: int = 1000
     region_overhead_bytes: int = 64
+    max_region_fpr: float = 1.0
+    filter_kinds: tuple[str, ...] = FILTER_KINDS
 
     def __post_init__(self) -> None:
         for name, low in (("max_regions", 1), ("segments", 1), ("region_overhead_bytes", 0)):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int) or value < low:
                 raise ValueError(f"RegionSettings.{name} must be an integer >= {low}, got {value!r}")
+        if not self.filter_kinds or set(self.filter_kinds) - set(FILTER_KINDS):
+            raise ValueError(f"RegionSettings.filter_kinds must be a non-empty selection of {FILTER_KINDS}, got {self.filter_kinds!r}")
+        cap = self.max_region_fpr
+        if isinstance(cap, bool) or not isinstance(cap, (int, float)) or not 0.0 < cap <= 1.0:
+            raise ValueError(f"RegionSettings.max_region_fpr must be a rate in (0, 1], got {cap!r}")
 
 
 @dataclass(frozen=True, eq=False)
@@ -72,13 +88,15 @@ class RegionPlan:
     boundaries: int64 (k-1,), ascending integer scores; region i holds boundaries[i-1] <= s <
         boundaries[i], the first from -inf, the last to +inf.
     fprs: float64 (k,), each region's false-positive budget f_i in [0, 1]: 1 = no filter (answers
-        yes), 0 = no members there (answers no), otherwise a backup Bloom filter at that rate.
+        yes), 0 = no members there (answers no), otherwise a backup filter at that rate.
+    filters: (k,) `tamis.budgets.FilterChoice`, each region's filter kind ("yes", "no", "bloom",
+        "fuse"), fingerprint width and arity, budget and priced bytes.
     member_counts: int64 (k,), members per region (they sum to all members).
     member_shares: float64 (k,), G_i = member_counts / members (all 0 when there are no members).
     nonmember_shares: float64 (k,), H_i = share of validation non-member lookups in region i.
     kl_bits: D = sum_i G_i log2(G_i / H_i), the divergence the regions achieve, in bits.
-    estimated_filter_bits: sum over regions of the optimal Bloom filter bits for their members at
-        their budgets (`tamis.bloom.bloom_bits`).
+    estimated_filter_bits: 8 x the bytes of the regions' filters as priced (`FilterChoice.bytes`:
+        words as built plus each section's overhead).
     estimated_total_bits: estimated_filter_bits plus k region overheads, the quantity k minimises.
     expected_fpr: sum_i H_i f_i, the false-positive rate predicted on validation lookups, <= target.
     segments: how many segments the regions were grouped from (after ties collapsed some).
@@ -86,6 +104,7 @@ class RegionPlan:
 
     boundaries: np.ndarray
     fprs: np.ndarray
+    filters: tuple[FilterChoice, ...]
     member_counts: np.ndarray
     member_shares: np.ndarray
     nonmember_shares: np.ndarray
@@ -137,7 +156,7 @@ def segment_shares(member_scores, nonmember_scores, nonmember_weights, edges):
 
 def kl_divergence_bits(G, H) -> float:
     """D = sum_i G_i log2(G_i / H_i) in bits, with 0 log 0 = 0 (and +inf where G_i > 0 = H_i)."""
-    G, H = _share_pair(G, H)
+    G, H = check_shares(G, H)
     return float(_divergence_terms(G, H).sum())
 
 
@@ -162,7 +181,7 @@ def best_partitions(g, h, max_regions: int, *, block_columns: int | None = None)
     the divergence (log-sum inequality), so each k uses exactly k regions when N >= k.
     `block_columns` overrides the block width (a memory knob; the result does not depend on it).
     """
-    g, h = _share_pair(g, h)
+    g, h = check_shares(g, h)
     if g.size == 0:
         raise ValueError("best_partitions needs at least one segment, got empty share vectors")
     if isinstance(max_regions, bool) or not isinstance(max_regions, (int, np.integer)) or max_regions < 1:
@@ -185,40 +204,6 @@ def best_partitions(g, h, max_regions: int, *, block_columns: int | None = None)
     return [_backtrack(start, regions, segments) for regions in range(1, layers + 1)]
 
 
-def allocate_fprs(G, H, target: float) -> np.ndarray:
-    """False-positive budgets f minimising sum_i G_i log2(1 / f_i) subject to sum_i H_i f_i <= target.
-
-    The problem is convex; its KKT solution is f_i = min(1, c G_i / H_i) with c making the
-    constraint tight. On regions sorted by G/H, the clamped ones (f = 1) are a prefix; c solves
-    target = sum_{clamped} H_i + c sum_{rest} G_i. Regions with G_i = 0 get f_i = 0 (no members:
-    answer no, cost nothing); G_i > 0 = H_i gets f_i = 1 (no lookups to refuse). When the target
-    allows every member region at f = 1, all of them get 1. The result always satisfies
-    sum_i H_i f_i <= target in floating point.
-    """
-    G, H = _share_pair(G, H)
-    if not 0.0 < target <= 1.0:
-        raise ValueError(f"target false-positive rate must be in (0, 1], got {target!r}")
-    fprs = np.zeros(G.size)
-    fprs[(G > 0) & (H == 0)] = 1.0
-    priced = (G > 0) & (H > 0)
-    if H[priced].sum() <= target:
-        fprs[priced] = 1.0
-        return fprs
-    ratio = G[priced] / H[priced]
-    c = _kkt_multiplier(ratio, G[priced], H[priced], target)
-    while True:
-        fprs[priced] = np.minimum(1.0, c * ratio)
-        if expected_fpr(H, fprs) <= target:
-            return fprs
-        # Rounding can overshoot the tight constraint by a few ulps; step c down until it holds.
-        c = np.nextafter(c, 0.0)
-
-
-def expected_fpr(H, fprs) -> float:
-    """sum_i H_i f_i: the false-positive rate of regions with lookup shares H and budgets f."""
-    return float(np.dot(H, fprs))
-
-
 def plan_regions(
     member_scores,
     nonmember_scores,
@@ -229,8 +214,8 @@ def plan_regions(
     """Choose regions and budgets for the members' scores at the target false-positive rate.
 
     Segments come from quantiles of the validation non-member scores; for every k up to
-    settings.max_regions the exact divergence-maximising partition gets the KKT budgets, and its cost
-    is sum_i bloom_bits(n_i, f_i) + k * region_overhead_bytes * 8 (n_i = members in region i). The k
+    settings.max_regions the exact divergence-maximising partition gets its cheapest filters
+    (`choose_filters`), and its cost is their bytes + k * region_overhead_bytes. The k
     with the least cost wins (the smaller k on a tie). `nonmember_weights` are lookup counts (None:
     one lookup each); the non-members must be validation keys the model did not train on.
     """
@@ -252,18 +237,20 @@ def plan_regions(
 
 
 def _plan_for_cuts(cuts, edges, member_counts, lookup_weights, target_fpr, settings) -> RegionPlan:
-    """The plan for one partition of the segments: region shares, KKT budgets and their bit cost."""
+    """The plan for one partition of the segments: region shares, filters, budgets and their cost."""
     starts = np.concatenate(([0], cuts))
     counts = np.add.reduceat(member_counts, starts)
     members = int(counts.sum())
     G = counts / members if members else np.zeros(counts.size)
     H = np.add.reduceat(lookup_weights, starts) / lookup_weights.sum()
-    fprs = allocate_fprs(G, H, target_fpr)
-    filter_bits = sum(bloom_bits(int(n), f) for n, f in zip(counts, fprs) if n > 0)
+    filters = tuple(choose_filters(counts, H, target_fpr, settings.max_region_fpr, settings.filter_kinds))
+    fprs = np.array([choice.fpr for choice in filters])
+    filter_bits = 8 * sum(choice.bytes for choice in filters)
     overhead_bits = len(fprs) * settings.region_overhead_bytes * 8
     return RegionPlan(
         boundaries=_read_only(edges[cuts - 1]),
         fprs=_read_only(fprs),
+        filters=filters,
         member_counts=_read_only(counts.astype(np.int64)),
         member_shares=_read_only(G),
         nonmember_shares=_read_only(H),
@@ -324,24 +311,6 @@ def _divergence_terms(G: np.ndarray, H: np.ndarray) -> np.ndarray:
     return terms
 
 
-def _kkt_multiplier(ratio, G, H, target: float) -> float:
-    """c with sum_i min(H_i, c G_i) = target, for target < sum_i H_i (all G_i, H_i > 0).
-
-    phi(c) = sum_i min(H_i, c G_i) is increasing and piecewise linear with a knee at c = 1/ratio_i.
-    With regions in decreasing ratio order, phi at the knee of region m is the H of regions before m
-    plus (1/ratio_m) times the G of regions m onwards. The regions whose knee value is <= target are
-    clamped; the rest solve target = H_clamped + c G_rest.
-    """
-    order = np.argsort(-ratio, kind="stable")
-    ratio, G, H = ratio[order], G[order], H[order]
-    H_before = np.concatenate(([0.0], np.cumsum(H)[:-1]))
-    G_onwards = np.cumsum(G[::-1])[::-1]
-    knee_values = H_before + G_onwards / ratio
-    # Exactly, the last knee value is sum(H) > target; min() keeps rounding from claiming otherwise.
-    clamped = min(int(np.count_nonzero(knee_values <= target)), ratio.size - 1)
-    return float((target - H_before[clamped]) / G_onwards[clamped])
-
-
 def _segment_totals(member_scores, nonmember_scores, nonmember_weights, edges):
     """Per segment: member count (int64) and summed non-member lookup weight (float64)."""
     members = _integer_scores(member_scores, "member_scores")
@@ -383,16 +352,6 @@ def _integer_scores(scores, name: str) -> np.ndarray:
             f"{name} must hold integer scores (the compiled model's output), got dtype {array.dtype}"
         )
     return array.astype(np.int64, copy=False)
-
-
-def _share_pair(G, H):
-    G = np.asarray(G, dtype=np.float64)
-    H = np.asarray(H, dtype=np.float64)
-    if G.ndim != 1 or G.shape != H.shape:
-        raise ValueError(f"member and non-member shares must be 1-D of one length, got {G.shape} and {H.shape}")
-    if not (np.all(np.isfinite(G)) and np.all(np.isfinite(H))) or np.any(G < 0) or np.any(H < 0):
-        raise ValueError("shares must be finite and >= 0")
-    return G, H
 
 
 def _read_only(array: np.ndarray) -> np.ndarray:

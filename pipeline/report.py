@@ -8,7 +8,8 @@ import dataclasses
 import math
 from pathlib import Path
 
-from tamis.bloom import bloom_bits, lower_bound_bits
+from tamis.baselines import best_static_filter
+from tamis.sizing import bloom_bits, lower_bound_bits
 from tamis.config import BuildConfig
 from tamis.corpus import Corpus
 from tamis.drift import Drift
@@ -38,6 +39,9 @@ def _region_rows(plan, filters) -> list[dict]:
             "nonmember_share": float(plan.nonmember_shares[i]),
             "fpr": float(plan.fprs[i]),
             "mode": region.mode,
+            "kind": region.mode,
+            "width": region.width if region.mode == "fuse" else None,
+            "hashes": region.hashes if region.mode in ("bloom", "fuse") else None,
             "filter_bytes": region.nbytes,
         }
         for i, region in enumerate(filters)
@@ -66,6 +70,7 @@ def build_report(
     members = len(corpus.members)
     target = config.target.fpr
     bloom_bytes = math.ceil(bloom_bits(members, target) / 8)
+    static = best_static_filter(members, target) if members else None
     reasons = refusal_reasons(checks)
     return {
         "version": version,
@@ -108,6 +113,9 @@ def build_report(
             "bloom_bytes": bloom_bytes,
             "ratio": total_bytes / bloom_bytes if bloom_bytes else None,
             "lower_bound_bytes": lower_bound_bits(members, target) / 8,
+            "static_bytes": static.bytes if static else 0,
+            "static_kind": static.kind if static else None,
+            "static_ratio": total_bytes / static.bytes if static else None,
         },
         "separation": {"kl_bits": plan.kl_bits, "auc": choice.auc},
         "model": {"trees": choice.trees, "params": choice.params, "candidates": choice.candidates},

@@ -95,6 +95,16 @@ def score_figure(scores: ScoreSample, boundaries: Sequence[int]) -> Figure:
     return figure
 
 
+def kind_label(region: dict) -> str:
+    """A region's filter in a few characters: "bloom k=7", "fuse r=7", "yes", "no"."""
+    kind = region.get("kind", region["mode"])
+    if kind == "fuse":
+        return f"fuse r={region['width']}"
+    if kind == "bloom" and region.get("hashes"):
+        return f"bloom k={region['hashes']}"
+    return f'"{kind}"' if kind in ("yes", "no") else kind
+
+
 def regions_figure(regions: Sequence[dict]) -> Figure:
     """Each region's false-positive budget (log scale) and the bytes of its backup filter."""
     figure, (budget_ax, bytes_ax) = _figure(columns=2)
@@ -111,8 +121,7 @@ def regions_figure(regions: Sequence[dict]) -> Figure:
         ax.set_xticks(index, labels)
         ax.set_xlabel("region")
     for i, region in enumerate(regions):
-        if region["mode"] != "bloom":
-            bytes_ax.annotate(f'"{region["mode"]}"', (i, 0), ha="center", va="bottom", fontsize=8)
+        bytes_ax.annotate(kind_label(region), (i, 0), ha="center", va="bottom", fontsize=8)
     return figure
 
 
@@ -249,6 +258,8 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("model bytes / filter bytes", f"{size['model_bytes']:,} / {size['filter_bytes']:,}"),
         ("bits per member", f"{size['bits_per_member']:.2f}"),
         ("plain Bloom filter bytes at the target, bits alone (ratio)", f"{base['bloom_bytes']:,} ({base['ratio']:.3f})"),
+        *([("best plain static filter bytes (kind, ratio)",
+            f"{base['static_bytes']:,} ({base['static_kind']}, {base['static_ratio']:.3f})")] if base.get("static_kind") else []),
         ("lower bound bytes (any filter without a model)", f"{base['lower_bound_bytes']:,.0f}"),
         ("KL divergence / AUC", f"{report['separation']['kl_bits']:.3f} bits / {report['separation']['auc']:.4f}"),
         ("model", f"{report['model']['trees']} trees"),
@@ -288,7 +299,7 @@ def gate_rows(report: dict) -> list[list[str]]:
 def region_rows(regions: Sequence[dict]) -> list[list[object]]:
     return [
         [f"R{i}", "-inf" if r["score_from"] is None else r["score_from"], "+inf" if r["score_to"] is None else r["score_to"],
-         f"{r['members']:,}", f"{r['nonmember_share']:.4%}", f"{r['fpr']:.4%}", r["mode"], f"{r['filter_bytes']:,}"]
+         f"{r['members']:,}", f"{r['nonmember_share']:.4%}", f"{r['fpr']:.4%}", kind_label(r), f"{r['filter_bytes']:,}"]
         for i, r in enumerate(regions)
     ]
 
@@ -423,7 +434,7 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         *_figure_html(figures, "score distributions"),
         "<h2>Regions</h2>",
         *_figure_html(figures, "region budgets and filter sizes"),
-        _table(["region", "scores from", "to", "members", "non-member share", "budget", "mode", "filter bytes"],
+        _table(["region", "scores from", "to", "members", "non-member share", "budget", "filter", "filter bytes"],
                region_rows(report["regions"])),
         "<h2>Size</h2>",
         *_figure_html(figures, "size against a plain Bloom filter and the lower bound"),

@@ -82,7 +82,7 @@ def build_golden(folder: Path) -> Path:
     member_scores = score_batch(choice.forest, X["members"])
     plan = plan_regions(member_scores, score_batch(choice.forest, X["validation"]), corpus.validation.counts,
                         TARGET_FPR, REGIONS)
-    filters = build_filters(corpus.members, region_of(member_scores, plan.boundaries), plan.fprs, HASH_SEED)
+    filters = build_filters(corpus.members, region_of(member_scores, plan.boundaries), plan.filters, HASH_SEED)
     # The tool version is pinned so that a release does not change the golden bytes.
     provenance = {**build_provenance(config, corpus), "tool_version": "golden"}
     path = Path(folder) / "golden.tamis"

@@ -13,7 +13,8 @@ import math
 import numpy as np
 import pytest
 
-from tamis.baselines import clamped_ideal_bytes, ideal_bytes, plan_single_threshold
+from tamis.sizing import bloom_bytes, fuse_bytes
+from tamis.baselines import best_static_filter, clamped_ideal_bytes, ideal_bytes, plan_single_threshold
 from tamis.bloom import bloom_bits, bloom_fpr, hash_keys
 from tamis.filters import build_filters
 from tamis.query import region_of
@@ -162,3 +163,16 @@ def test_without_clamping_the_clamped_ideal_is_the_formula(seed):
     target = 0.5 * float(np.min(shares / G))  # c = target, so every c G_i / H_i <= 0.5
     divergence = float(np.sum(G * np.log2(G / shares)))
     assert clamped_ideal_bytes(counts, shares, target, 0) == pytest.approx(ideal_bytes(int(counts.sum()), target, divergence, 0))
+
+
+def test_best_static_filter_is_the_smaller_plain_filter():
+    # At 1% a Bloom filter needs 9.585 bits a key (Bloom 1970); a binary fuse filter 7 bits times its
+    # size factor, about 1.10 at 200,000 keys 4-wise (Graf and Lemire, JEA 2022): the fuse filter wins.
+    best = best_static_filter(200_000, 0.01)
+    assert (best.kind, best.arity, best.width, best.fpr) == ("fuse", 4, 7, 2.0**-7)
+    assert best.bytes == fuse_bytes(200_000, 4, 7) < bloom_bytes(200_000, 0.01)
+    assert 1.08 < best.bytes * 8 / (200_000 * 7) < 1.12
+    # A rate just under a power of two costs a whole extra fingerprint bit: 0.0039 < 2^-8, so r = 9.
+    assert (best_static_filter(200_000, 0.0039).kind, best_static_filter(200_000, 0.0039).width) == ("fuse", 9)
+    # Three keys: the fixed segments of a fuse filter cost more than a Bloom filter's few words.
+    assert best_static_filter(3, 0.01).kind == "bloom"

@@ -1,6 +1,6 @@
 """The compiled query path (numba) against the numpy reference: bit-identical features, identical
-scores, regions and Bloom answers, and identical loader answers on the batch and single-key calls,
-on keys of every shape.
+scores, regions, Bloom and binary fuse answers, and identical loader answers on the batch and
+single-key calls, on keys of every shape.
 
 The numpy path is the reference (tests/test_features.py, tests/test_trees.py and tests/test_bloom.py
 check it against hand counts, LightGBM itself and the published Bloom formulas); here each kernel
@@ -24,6 +24,7 @@ pytest.importorskip("numba")
 from tamis import compiled, demo  # noqa: E402
 from tamis.bloom import BloomFilter, hash_keys  # noqa: E402
 from tamis.booster import compile_booster  # noqa: E402
+from tamis.fuse import build_fuse  # noqa: E402
 from tamis.features import default_feature_spec, feature_layout, featurize, featurize_columns, pack_keys  # noqa: E402
 from tamis.loader import open_filter  # noqa: E402
 from tamis.query import CompiledPath, Constant, NumpyPath, QueryTables, pack_batch  # noqa: E402
@@ -149,6 +150,20 @@ def test_bloom_answers_are_identical(bits, probes):
     assert np.array_equal(answers, bloom.query_hashes(hashes)) and answers[: len(members)].all()
 
 
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.binary(max_size=20), max_size=300), st.lists(st.binary(max_size=20), max_size=300),
+       st.integers(1, 32), st.sampled_from([3, 4]), st.integers(0, 2**64 - 1))
+def test_fuse_answers_are_identical(members, others, width, arity, seed):
+    fuse = build_fuse(hash_keys(members, 77), width, arity, 77, seed)
+    hashes = hash_keys(members + others, 77)
+    # a Bloom region first, so the fuse filter's words do not start the word table
+    bloom = BloomFilter.empty(64, 2, seed=77)
+    blob = CompiledPath(tables(default_feature_spec(), regions=[bloom, fuse], seed=77)).blob
+    answers = np.empty(len(hashes), dtype=bool)
+    compiled.answer_regions(np.ones(len(hashes), dtype=np.int64), hashes.low, hashes.high, blob, answers)
+    assert np.array_equal(answers, fuse.query_hashes(hashes)) and answers[: len(members)].all()
+
+
 def test_loader_answers_are_identical(forest_and_rows, tmp_path):
     from tamis.filters import build_filters
     from tamis.package import package_artifact
@@ -163,7 +178,8 @@ def test_loader_answers_are_identical(forest_and_rows, tmp_path):
     others = [k for k in handles[1::2] if k not in set(members)]
     member_scores = score_batch(forest, featurize(members, spec))
     plan = plan_regions(member_scores, score_batch(forest, featurize(others, spec)), None, 0.05, RegionSettings(segments=100))
-    filters = build_filters(members, region_of(member_scores, plan.boundaries), plan.fprs, 99)
+    filters = build_filters(members, region_of(member_scores, plan.boundaries), plan.filters, 99)
+    assert {"bloom", "fuse"} & {f.mode for f in filters}
     path = tmp_path / "both.tamis"
     package_artifact(path, feature_spec=spec, forest=forest, boundaries=plan.boundaries, region_filters=filters,
                      hash_seed=99, provenance={"test": "compiled"})

@@ -33,11 +33,20 @@ def test_relative_paths_resolve_against_the_config_folder(tmp_path):
         ({"model": {"leaves": 7}}, r"model\.leaves must be a non-empty list"),
         ({"model": {"threads": 1.5}}, r"model\.threads must be an integer"),
         ({"corpus": {"validation_share": 0.6, "heldout_share": 0.6}}, r"leave at least 0\.1"),
+        ({"regions": {"max_region_fpr": 1.5}}, r"max_region_fpr must be a rate in \(0, 1\]"),
+        ({"regions": {"max_region_fpr": 0}}, r"max_region_fpr must be a rate in \(0, 1\]"),
+        ({"regions": {"filter_kinds": ["bloom", "cuckoo"]}}, r"filter_kinds must be a non-empty selection"),
     ],
 )
 def test_bad_values_name_their_key(raw, message):
     with pytest.raises(ConfigError, match=message):
         config_from_dict(raw, Path("."))
+
+
+def test_region_cap_and_filter_kinds_are_read():
+    config = config_from_dict({"regions": {"max_region_fpr": 0.1, "filter_kinds": ["bloom"]}}, Path("."))
+    assert config.regions.max_region_fpr == 0.1 and config.regions.filter_kinds == ("bloom",)
+    assert config_from_dict({}, Path(".")).regions.max_region_fpr == 1.0  # no cap by default
 
 
 def test_missing_paths_say_which_option_to_pass():

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 
 from tamis.bloom import BloomFilter, bloom_bits, bloom_fpr, bloom_hashes
+from tamis.budgets import FilterChoice
 from tamis.filters import build_filters, chunk_words, empty_filters, merge_words
 
 SEED = 404
@@ -102,17 +103,21 @@ def test_bad_inputs_are_refused(keys, regions, fprs, message):
 def test_chunked_insertion_equals_one_pass():
     """Bits set chunk by chunk and ORed together, in any order, equal the bits of one insertion:
     setting a bit is idempotent and commutative (common practice: Bloom filters of the same size and
-    hashes merge by OR into the filter of the union)."""
+    hashes merge by OR into the filter of the union). A fuse filter is solved once from its members'
+    hashes, which it sorts first, so the cut and the order of the chunks do not matter either."""
     keys = random_keys(30_000, 9, b"m")
-    regions = np.random.default_rng(3).integers(0, 4, len(keys))
-    fprs = np.array([0.01, 1.0, 0.2, 0.05])
-    whole = build_filters(keys, regions, fprs, SEED)
-    filters = empty_filters(regions, fprs, SEED)
+    regions = np.random.default_rng(3).integers(0, 5, len(keys))
+    choices = [FilterChoice("bloom", 0.01), FilterChoice("yes", 1.0), FilterChoice("bloom", 0.2),
+               FilterChoice("bloom", 0.05), FilterChoice("fuse", 2.0**-9, arity=4, width=9)]
+    whole = build_filters(keys, regions, choices, SEED)
+    filters = empty_filters(regions, choices, SEED)
     cuts = [0, 1, 7_000, 7_001, 22_000, len(keys)]
     parts = [chunk_words(filters, keys[a:b], regions[a:b], SEED) for a, b in zip(cuts, cuts[1:])]
-    merged = merge_words(filters, reversed(parts))
-    assert [f.mode for f in merged] == ["bloom", "yes", "bloom", "bloom"]
+    merged = merge_words(filters, reversed(parts), SEED)
+    assert [f.mode for f in merged] == ["bloom", "yes", "bloom", "bloom", "fuse"]
     for one, other in zip(whole, merged):
-        assert (one.mode, one.bits, one.hashes, one.members) == (other.mode, other.bits, other.hashes, other.members)
+        assert (one.mode, one.bits, one.hashes, one.members, one.seed) == (other.mode, other.bits, other.hashes, other.members, other.seed)
         assert np.array_equal(one.words, other.words)
+    mine = [key for key, region in zip(keys, regions) if region == 4]
+    assert merged[4].fuse(SEED).query(mine).all()
     assert not filters[0].words.any(), "merging must not write into the empty filters"

@@ -15,16 +15,16 @@ from tamis.loader import open_filter
 
 # SOURCE_DATE_EPOCH for the build time: 2026-12-01T00:00:00Z.
 BUILD_EPOCH = "1796083200"
-# xxh3-64 of the artifact, recorded with LightGBM 4.7.0 and numpy 2.4 when this test was written.
-GOLDEN_DIGEST = "b59b1e8a2a213aca"
+# xxh3-64 of the artifact, recorded with LightGBM 4.7.0 and numpy 2.4 (format 2.0, with a fuse region).
+GOLDEN_DIGEST = "fb9b9c6b97425a48"
 
 
 def test_the_fixed_build_has_the_golden_digest(tmp_path, monkeypatch):
     monkeypatch.setenv("SOURCE_DATE_EPOCH", BUILD_EPOCH)
     path = build_golden(tmp_path)
     loaded = open_filter(path)
-    # the build is only worth pinning if it holds a forest and Bloom filters
+    # the build is only worth pinning if it holds a forest, a Bloom filter and a binary fuse filter
     assert loaded.forest.trees > 0
-    assert "bloom" in {region["mode"] for region in loaded.info["regions"]}
+    assert {"bloom", "fuse"} <= {region["mode"] for region in loaded.info["regions"]}
     assert loaded.info["provenance"]["built_at"] == "2026-12-01T00:00:00Z"
     assert xxhash.xxh3_64_hexdigest(path.read_bytes()) == GOLDEN_DIGEST

@@ -73,7 +73,7 @@ def built(tmp_path_factory):
     val_scores = score_batch(forest, featurize(val_non, spec))
     plan = plan_regions(member_scores, val_scores, None, TARGET_FPR, RegionSettings(segments=200))
     member_regions = region_of(member_scores, plan.boundaries)
-    filters = build_filters(members, member_regions, plan.fprs, HASH_SEED)
+    filters = build_filters(members, member_regions, plan.filters, HASH_SEED)
 
     path = tmp_path_factory.mktemp("artifact") / "filter.tamis"
     package_artifact(path, feature_spec=spec, forest=forest, boundaries=plan.boundaries,
@@ -83,9 +83,9 @@ def built(tmp_path_factory):
 
 
 def test_the_plan_has_real_filters(built):
-    # The test is only meaningful if several regions and at least one Bloom filter were built.
+    # The test is only meaningful if several regions and at least one filter were built.
     assert built["plan"].regions >= 2
-    assert any(f.mode == "bloom" for f in built["filters"])
+    assert any(f.mode in ("bloom", "fuse") for f in built["filters"])
 
 
 def test_every_member_answers_yes(built):
@@ -102,13 +102,13 @@ def test_fpr_on_fresh_nonmembers(built):
     answers = loaded.contains_many(fresh)
     measured = answers.mean()
 
-    # Given each fresh key's region, a key answers yes with probability 1 ("yes"), 0 ("no") or the
-    # Bloom formula's rate (B. H. Bloom, CACM 13(7), 1970): a Poisson-binomial count.
+    # Given each fresh key's region, a key answers yes with probability 1 ("yes"), 0 ("no"), the
+    # Bloom formula's rate (B. H. Bloom, CACM 13(7), 1970) or a fuse filter's 2^-r (Graf and Lemire,
+    # JEA 2022): a Poisson-binomial count.
     regions = region_of(score_batch(built["forest"], featurize(fresh, built["spec"])), built["plan"].boundaries)
-    per_region = np.array([
-        1.0 if f.mode == "yes" else 0.0 if f.mode == "no" else bloom_fpr(f.bits, f.members, f.hashes)
-        for f in built["filters"]
-    ])
+    rates = {"yes": lambda f: 1.0, "no": lambda f: 0.0, "fuse": lambda f: 2.0**-f.width,
+             "bloom": lambda f: bloom_fpr(f.bits, f.members, f.hashes)}
+    per_region = np.array([rates[f.mode](f) for f in built["filters"]])
     p = per_region[regions]
     sigma = math.sqrt(float((p * (1 - p)).sum()))
     assert abs(answers.sum() - p.sum()) <= SIGMA_TOLERANCE * max(sigma, 1.0)
@@ -209,7 +209,7 @@ def test_key_types(built):
 def test_info_is_the_header(built):
     loaded = open_filter(built["path"])
     info = loaded.info
-    assert info["format"] == "1.0"
+    assert info["format"] == "2.0"
     assert info["provenance"] == PROVENANCE
     assert info["feature_spec"] == built["spec"]
     assert info["boundaries"] == built["plan"].boundaries.tolist()
@@ -283,9 +283,9 @@ def test_bad_magic_and_unknown_major_are_refused(built, tmp_path):
     bad.write_bytes(b"PK\x03\x04" + bytes(raw[4:]))
     with pytest.raises(FilterLoadError, match="not a tamis artifact"):
         open_filter(bad)
-    raw[8:10] = struct.pack("<H", 2)
+    raw[8:10] = struct.pack("<H", 3)
     bad.write_bytes(bytes(raw))
-    with pytest.raises(FilterLoadError, match="format 2.0 not supported"):
+    with pytest.raises(FilterLoadError, match="format 3.0 not supported"):
         open_filter(bad)
     with pytest.raises(FilterLoadError, match="cannot read artifact"):
         open_filter(tmp_path / "absent")
@@ -305,6 +305,10 @@ def _first_bloom(header) -> dict:
     return next(r for r in header["regions"] if r["mode"] == "bloom")
 
 
+def _first_fuse(header) -> dict:
+    return next(r for r in header["regions"] if r["mode"] == "fuse")
+
+
 @pytest.mark.parametrize(
     "edit, message",
     [
@@ -322,8 +326,13 @@ def _first_bloom(header) -> dict:
         (lambda h, s: _first_bloom(h).update(section="filter.99"), "does not hold"),
         (lambda h, s: _first_bloom(h).update(bits=_first_bloom(h)["bits"] + 64), "uint64 words"),
         (lambda h, s: _first_bloom(h).update(hashes=1000), "between 1 and 64 probes"),
-        (lambda h, s: _first_bloom(h).update(hashes=None), "integer 'bits' and 'hashes'"),
+        (lambda h, s: _first_bloom(h).update(hashes=None), "integer 'bits', 'hashes'"),
         (lambda h, s: s.update({_first_bloom(h)["section"]: np.zeros(3, "<i8")}), "uint64 words"),
+        (lambda h, s: _first_fuse(h).update(width=33), "fingerprint width must be 1 to 32"),
+        (lambda h, s: _first_fuse(h).update(hashes=5), "arity must be one of"),
+        (lambda h, s: _first_fuse(h).update(segment_length=3), "power of two"),
+        (lambda h, s: _first_fuse(h).update(segment_count=_first_fuse(h)["segment_count"] + 1), "uint64 words"),
+        (lambda h, s: _first_fuse(h).pop("seed"), "needs integer 'hashes', 'width', 'seed'"),
     ],
 )
 def test_inconsistent_headers_are_refused(built, tmp_path, edit, message):
@@ -409,9 +418,19 @@ def test_degraded_mode_covers_a_missing_file_and_leaves_good_files_alone(built, 
 # --- compatibility --------------------------------------------------------------------------------
 
 
+def test_a_format_1_file_holds_no_fuse_region(built, tmp_path):
+    # Binary fuse regions came with format 2.0: a file that says 1.x and holds one is inconsistent.
+    raw = bytearray(built["path"].read_bytes())
+    raw[8:10] = struct.pack("<H", 1)
+    path = tmp_path / "old.tamis"
+    path.write_bytes(bytes(raw))
+    with pytest.raises(FilterLoadError, match=r"unknown mode 'fuse' \(format 1.x knows"):
+        open_filter(path)
+
+
 def test_a_newer_minor_with_unknown_fields_and_sections_opens(built, tmp_path):
     header, sections = read_artifact(built["path"])
-    header["added_in_1_3"] = {"note": "a later writer's field"}
+    header["added_in_2_3"] = {"note": "a later writer's field"}
     header["regions"][0]["later_region_field"] = [1, 2, 3]
     sections = {**{k: np.array(v) for k, v in sections.items()}, "later.table": np.arange(5, dtype="<u2")}
     path = tmp_path / "newer.tamis"
@@ -420,11 +439,11 @@ def test_a_newer_minor_with_unknown_fields_and_sections_opens(built, tmp_path):
     raw[10:12] = struct.pack("<H", 3)  # minor version 3; no checksum covers the preamble's version
     path.write_bytes(bytes(raw))
     loaded = open_filter(path)
-    assert loaded.info["format"] == "1.3" and loaded.info["added_in_1_3"] == {"note": "a later writer's field"}
+    assert loaded.info["format"] == "2.3" and loaded.info["added_in_2_3"] == {"note": "a later writer's field"}
     assert np.array_equal(loaded.contains_many(built["fresh"][:2000]), open_filter(built["path"]).contains_many(built["fresh"][:2000]))
-    raw[8:10] = struct.pack("<H", 2)
+    raw[8:10] = struct.pack("<H", 3)
     path.write_bytes(bytes(raw))
-    with pytest.raises(FilterLoadError, match="format 2.3 not supported"):
+    with pytest.raises(FilterLoadError, match="format 3.3 not supported"):
         open_filter(path)
 
 

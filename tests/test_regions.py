@@ -16,11 +16,11 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
+from tamis.budgets import allocate_fprs
 from tamis.query import region_of
 from tamis.regions import (
     RegionPlan,
     RegionSettings,
-    allocate_fprs,
     best_partition,
     best_partitions,
     kl_divergence_bits,
@@ -28,6 +28,7 @@ from tamis.regions import (
     segment_edges,
     segment_shares,
 )
+from tamis.sizing import SECTION_BYTES, filter_bytes
 
 
 def partition_divergence(g, h, cuts) -> float:
@@ -321,6 +322,25 @@ def synthetic_corpus(seed: int, members: int = 20_000, nonmembers: int = 50_000)
     return member_scores, nonmember_scores, weights
 
 
+def bloom_formula_bytes(n: int, f: float) -> int:
+    """Bloom 1970, standard analysis: m = n ln(1/f) / (ln 2)^2 bits, rounded up, in whole 64-bit
+    words, plus the section's overhead."""
+    return 8 * math.ceil(math.ceil(n * math.log(1 / f) / math.log(2) ** 2) / 64) + SECTION_BYTES
+
+
+def priced_bytes(n: int, f: float, choice) -> int:
+    """A region's filter bytes by its kind: a fingerprint filter's rate is 2^-r (Graf and Lemire,
+    JEA 2022), so its budget is exactly that."""
+    if choice.kind == "bloom":
+        assert 0 < f < 1
+        return bloom_formula_bytes(n, f)
+    if choice.kind == "fuse":
+        assert f == 2.0 ** -choice.width
+        return filter_bytes("fuse", n, arity=choice.arity, width=choice.width)
+    assert (choice.kind, f) in {("yes", 1.0), ("no", 0.0)}
+    return 0
+
+
 def assert_plan_is_consistent(plan: RegionPlan, members, nonmembers, weights, target, settings):
     regions = plan.regions
     assert 1 <= regions <= settings.max_regions
@@ -337,10 +357,7 @@ def assert_plan_is_consistent(plan: RegionPlan, members, nonmembers, weights, ta
     assert plan.expected_fpr <= target
     assert plan.expected_fpr == pytest.approx(float(lookups @ plan.fprs / lookups.sum()), rel=1e-12, abs=1e-15)
     assert np.all(plan.fprs[counts == 0] == 0.0) and np.all(plan.fprs[counts > 0] > 0.0)
-    # Bloom 1970, standard analysis: m = n ln(1/f) / (ln 2)^2 bits, rounded up.
-    bits = sum(
-        math.ceil(n * math.log(1 / f) / math.log(2) ** 2) for n, f in zip(counts, plan.fprs) if 0 < f < 1
-    )
+    bits = 8 * sum(priced_bytes(n, f, choice) for n, f, choice in zip(counts, plan.fprs, plan.filters))
     assert plan.estimated_filter_bits == bits
     assert plan.estimated_total_bits == bits + regions * settings.region_overhead_bytes * 8
     assert plan.kl_bits == pytest.approx(
@@ -364,9 +381,9 @@ def test_plan_regions_saves_space_over_one_bloom_filter():
     members, nonmembers, weights = synthetic_corpus(10)
     settings = RegionSettings(max_regions=6, segments=500, region_overhead_bytes=64)
     plan = plan_regions(members, nonmembers, weights, 0.01, settings)
-    single = plan_regions(members, nonmembers, weights, 0.01, RegionSettings(max_regions=1, segments=500))
+    single = plan_regions(members, nonmembers, weights, 0.01, RegionSettings(max_regions=1, segments=500, filter_kinds=("bloom",)))
     assert single.regions == 1 and single.fprs.tolist() == [0.01]
-    assert single.estimated_filter_bits == math.ceil(len(members) * math.log(100) / math.log(2) ** 2)
+    assert single.estimated_filter_bits == 8 * bloom_formula_bytes(len(members), 0.01)
     assert plan.estimated_total_bits < 0.8 * single.estimated_total_bits
 
 
@@ -395,13 +412,14 @@ def test_plan_regions_space_formula_without_clamping():
     nonmember_weights = np.round(h * 1e9) + 1.0  # one lookup at least, so every segment is seen
     target = 1e-9  # small enough that c G_i / H_i stays below 1 everywhere: no clamping
     for max_regions in (1, 3, 6):
-        settings = RegionSettings(max_regions=max_regions, segments=segments, region_overhead_bytes=0)
+        settings = RegionSettings(max_regions=max_regions, segments=segments, region_overhead_bytes=0, filter_kinds=("bloom",))
         plan = plan_regions(members, scores, nonmember_weights, target, settings)
         assert plan.segments == segments
         assert np.all(plan.fprs < 1.0)
         divergence = stats.entropy(plan.member_shares, plan.nonmember_shares, base=2)
         formula = len(members) * (math.log2(1 / target) - divergence) / math.log(2)
-        assert formula <= plan.estimated_filter_bits <= formula + plan.regions + 1e-6 * formula
+        sections = plan.regions * 8 * SECTION_BYTES
+        assert formula + sections <= plan.estimated_filter_bits <= formula + sections + 64 * plan.regions + 1e-6 * formula
         assert plan.regions == max_regions  # with no overhead more regions always help here
 
 
@@ -450,7 +468,7 @@ def test_plan_with_one_member():
     plan = plan_regions(np.array([500]), nonmembers, None, 0.01, settings)
     assert_plan_is_consistent(plan, np.array([500]), nonmembers, np.ones(1000), 0.01, settings)
     assert plan.member_counts.sum() == 1
-    assert plan.estimated_filter_bits <= math.ceil(math.log(100) / math.log(2) ** 2)
+    assert plan.estimated_filter_bits <= 8 * bloom_formula_bytes(1, 0.01)
 
 
 def test_plan_with_all_members_in_one_segment():

@@ -1,0 +1,202 @@
+"""Sizes and false-positive rates of every filter kind, in one place, each with its source and a number.
+
+Kinds: Bloom filters (`tamis.bloom`) and binary fuse filters (`tamis.fuse`). The region plan prices
+each region with `filter_bytes`, the bytes a region's filter really adds to the artifact: its
+stored words, the alignment padding of its section, and its section-table and header entries.
+
+These formulas are estimates: they size filters and drive the region plan. The false-positive rate
+a user is promised is always the one measured on held-out non-members (see `tamis.verify`).
+
+Sources. B. H. Bloom, "Space/time trade-offs in hash coding with allowable errors", CACM 13(7),
+1970, and the standard analysis that follows it. T. M. Graf and D. Lemire, "Binary Fuse Filters:
+Fast and Smaller Than Xor Filters", ACM JEA 27, 2022 (segment lengths and size factors below, as
+recalled from memory of the paper; our construction then retries with new seeds and larger
+arrays when peeling fails, so these only need to make success likely, not certain).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+LN2 = math.log(2.0)
+
+# A Bloom filter sized optimally needs 1/ln 2 = 1.4427 times the information-theoretic lower bound
+# of log2(1/f) bits per key: at f = 1% that is 9.585 bits per key against 6.644.
+BLOOM_OVERHEAD = 1.0 / LN2
+
+# Bytes a region's filter section adds besides its words: its section-table entry (name, dtype,
+# shape, offset, length, checksum: about 70 msgpack bytes), the filter's header fields (about 60)
+# and on average half of the 64-byte alignment its section starts at (see tamis.artifact).
+# Measured on the demo artifact: 140 to 170 bytes a section; 160 is the round figure.
+SECTION_BYTES = 160
+
+
+def lower_bound_bits(n: int, fpr: float) -> float:
+    """Information-theoretic minimum n log2(1/f) bits for any filter of n keys at rate f."""
+    return 0.0 if fpr >= 1.0 else n * math.log2(1.0 / fpr)
+
+
+# ---------------------------------------------------------------------------------------------------
+# Bloom filters
+# ---------------------------------------------------------------------------------------------------
+
+
+def bloom_bits(n: int, fpr: float) -> int:
+    """Bits m of an optimally sized Bloom filter for n keys at false-positive rate fpr.
+
+    m = -n ln f / (ln 2)^2, rounded up (Bloom 1970, standard analysis). At n = 1,000,000 and f = 1%
+    that is 9,585,059 bits (1.14 MiB). A rate of 1 or more needs no filter (every key answers yes).
+    """
+    if not 0.0 < fpr:
+        raise ValueError(f"false-positive rate must be > 0, got {fpr}")
+    if n == 0 or fpr >= 1.0:
+        return 0
+    return max(1, math.ceil(-n * math.log(fpr) / (LN2 * LN2)))
+
+
+def bloom_hashes(m: int, n: int) -> int:
+    """Number of probes k = (m/n) ln 2, rounded to the nearest integer, at least 1.
+
+    At 9.585 bits per key this gives k = 7 (6.64 before rounding).
+    """
+    if n == 0 or m == 0:
+        return 0
+    return max(1, round(m / n * LN2))
+
+
+def bloom_fpr(m: int, n: int, k: int) -> float:
+    """Expected false-positive rate (1 - e^{-k n / m})^k of a filter with m bits, n keys, k probes.
+
+    At m/n = 10 bits per key and k = 7 this is 0.819%; at 9.585 bits and k = 7 it is 1.003%.
+    An empty filter (n = 0) answers no to everything; a missing one (m = 0) answers yes.
+    """
+    if m == 0:
+        return 1.0
+    if n == 0:
+        return 0.0
+    return (1.0 - math.exp(-k * n / m)) ** k
+
+
+def sized_fpr(n: int, fpr: float) -> float:
+    """The formula rate of the filter `bloom_bits` and `bloom_hashes` size for n keys at budget fpr.
+
+    Whole bits and a whole number of probes put it a little above the budget: 1.0039% for 1%,
+    1.0054% at 5%, 1.0076% at 1.1% (k = 7 where 6.5 would be optimal). Budgets of 1 or more and
+    empty filters keep their budget (a "yes" region answers every key, a "no" region none).
+    """
+    if n == 0 or fpr >= 1.0:
+        return min(fpr, 1.0)
+    bits = bloom_bits(n, fpr)
+    return bloom_fpr(bits, n, bloom_hashes(bits, n))
+
+
+def sized_rate(kind: str, n: int, fpr: float) -> float:
+    """The formula rate of the filter the filters stage builds for a region of n members given
+    kind and budget: a fuse filter's 2^-r is its budget exactly; a Bloom filter's is `sized_fpr`."""
+    return sized_fpr(n, fpr) if kind == "bloom" else min(fpr, 1.0)
+
+
+def bloom_bytes(n: int, fpr: float) -> int:
+    """Stored bytes of the Bloom filter `tamis.filters` builds: its bits in whole 64-bit words.
+
+    At n = 10,000 and f = 1%: 95,851 bits, 1,498 words, 11,984 bytes.
+    """
+    return 8 * -(-bloom_bits(n, fpr) // 64)
+
+
+# ---------------------------------------------------------------------------------------------------
+# Binary fuse filters (Graf and Lemire, JEA 2022)
+# ---------------------------------------------------------------------------------------------------
+
+FUSE_ARITIES = (3, 4)
+FUSE_MAX_WIDTH = 32  # fingerprints come from the low 32 bits of one 64-bit mix (tamis.fuse)
+FUSE_MAX_SEGMENT_LENGTH = 1 << 16  # four 16-bit slot offsets fit in one 64-bit mix (tamis.fuse)
+
+
+@dataclass(frozen=True)
+class FuseLayout:
+    """The shape of a binary fuse filter's array: `arity` segments per key, each of
+    `segment_length` slots, `segment_count` possible start segments."""
+
+    arity: int
+    segment_length: int
+    segment_count: int
+
+    @property
+    def slots(self) -> int:
+        return (self.segment_count + self.arity - 1) * self.segment_length
+
+    def word_count(self, width: int) -> int:
+        """uint64 words holding every slot's `width` bits."""
+        return -(-self.slots * width // 64)
+
+
+def fuse_segment_length(n: int, arity: int) -> int:
+    """Segment length L, a power of two growing with n (Graf and Lemire 2022, as recalled):
+
+    3-wise: 2^floor(ln n / ln 3.33 + 2.25); 4-wise: 2^floor(ln n / ln 2.91 - 0.5); here at least 1 and
+    at most 2^16. At n = 100,000: 3-wise 2^11 = 2,048, 4-wise 2^10 = 1,024.
+    """
+    n = max(n, 2)
+    if arity == 3:
+        exponent = math.floor(math.log(n) / math.log(3.33) + 2.25)
+    else:
+        exponent = math.floor(math.log(n) / math.log(2.91) - 0.5)
+    return 1 << min(max(exponent, 0), 16)
+
+
+def fuse_size_factor(n: int, arity: int) -> float:
+    """Slots per key the array is sized for (Graf and Lemire 2022, as recalled):
+
+    3-wise: max(1.125, 0.875 + 0.25 ln(10^6) / ln n); 4-wise: max(1.075, 0.77 + 0.305 ln(600,000) / ln n).
+    It grows for small sets: at n = 10,000, 1.250 (3-wise) and 1.211 (4-wise); at n = 1,000,000, 1.125
+    and 1.075. These are the published figures for their layout; tests/test_fuse.py measures how
+    often ours peels at them.
+    """
+    n = max(n, 2)
+    if arity == 3:
+        return max(1.125, 0.875 + 0.25 * math.log(1e6) / math.log(n))
+    return max(1.075, 0.77 + 0.305 * math.log(6e5) / math.log(n))
+
+
+def fuse_layout(n: int, arity: int, growth: float = 1.0) -> FuseLayout:
+    """The array for n keys: capacity n x size factor x growth slots, in whole segments.
+
+    start segments = max(1, ceil(capacity / L) - (arity - 1)), so the slots are
+    (start segments + arity - 1) L, at least the capacity. At n = 100,000 3-wise: L = 2,048,
+    factor 1.175, capacity 117,500, 56 start segments, 118,784 slots (1.188 per key).
+    """
+    if arity not in FUSE_ARITIES:
+        raise ValueError(f"binary fuse filters here are 3-wise or 4-wise, got arity {arity}")
+    length = fuse_segment_length(n, arity)
+    capacity = round(max(n, 1) * fuse_size_factor(n, arity) * growth)
+    starts = max(1, -(-capacity // length) - (arity - 1))
+    return FuseLayout(arity, length, starts)
+
+
+def fuse_fpr(width: int) -> float:
+    """False-positive rate 2^-r of r-bit fingerprints: a non-member's fingerprint is independent of
+    the XOR of its slots (Graf and Lemire 2020, 2022). r = 7: 0.78%; r = 8: 0.39%."""
+    return 2.0 ** -width
+
+
+def fuse_bytes(n: int, arity: int, width: int) -> int:
+    """Stored bytes of a binary fuse filter of n keys with width-bit fingerprints (whole words).
+
+    At n = 100,000, 4-wise, r = 7: L = 1,024, 112,640 slots, 788,480 bits, 98,560 bytes: 7.88 bits a
+    key against the bound's 7 at f = 2^-7 (1.126 x); the same at 3-wise: 118,784 slots, 103,936 bytes.
+    """
+    return 8 * fuse_layout(n, arity).word_count(width)
+
+
+def filter_bytes(kind: str, n: int, *, fpr: float | None = None, arity: int = 0, width: int = 0) -> int:
+    """Bytes a region's filter adds to the artifact (words plus SECTION_BYTES): "bloom" at fpr,
+    "fuse" with arity and width; 0 for "yes" and "no", which store nothing."""
+    if kind in ("yes", "no"):
+        return 0
+    if kind == "bloom":
+        return bloom_bytes(n, fpr) + SECTION_BYTES
+    if kind == "fuse":
+        return fuse_bytes(n, arity, width) + SECTION_BYTES
+    raise ValueError(f"unknown filter kind {kind!r}")
