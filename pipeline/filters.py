@@ -192,7 +192,7 @@ def merge_words(filters: Sequence[RegionFilter], chunks: Iterable[Sequence[np.nd
         parts = [chunk[index] for chunk in chunks]
         if region.mode == "fuse":
             pairs = np.concatenate([np.zeros((2, 0), dtype=np.uint64), *parts], axis=1)
-            merged.append(_solved_fuse(region, KeyHashes(pairs[0], pairs[1]), hash_seed))
+            merged.append(solved_fuse(region, KeyHashes(pairs[0], pairs[1]), hash_seed))
             continue
         words = region.words.copy()
         for part in parts:
@@ -201,7 +201,7 @@ def merge_words(filters: Sequence[RegionFilter], chunks: Iterable[Sequence[np.nd
     return merged
 
 
-def _solved_fuse(region: RegionFilter, key_hashes: KeyHashes, hash_seed: int) -> RegionFilter:
+def solved_fuse(region: RegionFilter, key_hashes: KeyHashes, hash_seed: int) -> RegionFilter:
     """The fuse filter of these members; a Bloom filter at the same budget if construction fails."""
     fuse = build_fuse(key_hashes, region.width, region.hashes, hash_seed, region.seed)
     if fuse is None:

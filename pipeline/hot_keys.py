@@ -27,8 +27,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from tamis.bloom import BloomFilter, hash_keys
-from tamis.filters import RegionFilter
-from tamis.fuse import build_fuse
+from tamis.filters import RegionFilter, solved_fuse
 
 # A fuse region's variant j starts its construction at seed j x this: a failed seed retries the
 # next one, and 2^32 tries lie far beyond any construction's (tamis.fuse.SEEDS_PER_SIZE x sizes).
@@ -63,13 +62,10 @@ def heavy_false_positive_lookups(region: RegionFilter, bits: int, members, heavy
 
 
 def fuse_false_positive_lookups(region: RegionFilter, seed: int, members, heavy, counts: np.ndarray, hash_seed: int) -> int:
-    """Heavy lookups answered maybe by a region's fuse filter built from start seed `seed` (the
-    filters stage builds the same filter from it); a region whose construction fails every try
-    gets a Bloom filter instead, so its variant is priced as that filter."""
-    fuse = build_fuse(members, region.width, region.hashes, hash_seed, seed)
-    if fuse is None:
-        return heavy_false_positive_lookups(region, region.bits, members, heavy, counts, hash_seed)
-    return int(counts[fuse.query_hashes(heavy)].sum())
+    """Heavy lookups answered maybe by a region's fuse filter built from start seed `seed`, as the
+    filters stage builds it from that seed (a Bloom filter should every construction fail)."""
+    built = solved_fuse(replace(region, seed=seed), members, hash_seed)
+    return int(counts[built.query_hashes(heavy, hash_seed)].sum())
 
 
 def spare_heavy_keys(

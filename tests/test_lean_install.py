@@ -69,7 +69,7 @@ def test_the_loader_imports_no_build_stage_and_no_build_library():
                             check=True).stdout.split()
     ours = {name for name in loaded if name.startswith("tamis")}
     assert ours == {"tamis", "tamis.artifact", "tamis.bloom", "tamis.compiled", "tamis.errors", "tamis.features",
-                    "tamis.format", "tamis.loader", "tamis.query", "tamis.store", "tamis.trees"}
+                    "tamis.format", "tamis.fuse", "tamis.loader", "tamis.query", "tamis.sizing", "tamis.store", "tamis.trees"}
     assert not {name.split(".")[0] for name in loaded} & {*BUILD_STACK, "pandas", "numba"}
 
 
