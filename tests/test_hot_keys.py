@@ -6,6 +6,7 @@ import math
 import numpy as np
 
 from tamis.bloom import BloomFilter
+from tamis.budgets import FilterChoice
 from tamis.filters import chunk_words, empty_filters, merge_words
 from tamis.hot_keys import spare_heavy_keys
 
@@ -21,20 +22,21 @@ def test_the_chosen_variants_hold_every_member_and_spare_heavy_keys():
     member_regions = np.arange(3000) % 3
     heavy_regions = np.arange(400) % 3
     counts = np.random.default_rng(1).integers(44, 5000, 400)
-    fprs = np.array([0.2, 0.05, 1.0])
-    empty = empty_filters(member_regions, fprs, SEED)
+    choices = [FilterChoice("bloom", 0.2), FilterChoice("fuse", 2.0**-4, arity=4, width=4), FilterChoice("yes", 1.0)]
+    empty = empty_filters(member_regions, choices, SEED)
     spared = spare_heavy_keys(empty, members, member_regions, heavy, counts, heavy_regions, SEED, variants=8)
     assert spared.chosen_lookups <= spared.first_lookups
-    filled = merge_words(spared.filters, [chunk_words(spared.filters, members, member_regions, SEED)])
+    filled = merge_words(spared.filters, [chunk_words(spared.filters, members, member_regions, SEED)], SEED)
     found = 0
     for index, region in enumerate(filled):
-        if region.mode != "bloom":
+        if region.mode not in ("bloom", "fuse"):
             continue
-        assert empty[index].bits <= region.bits < empty[index].bits + 8
-        bloom = region.bloom(SEED)
-        assert bloom.query([m for m, r in zip(members, member_regions) if r == index]).all()  # no false negative
+        if region.mode == "bloom":
+            assert empty[index].bits <= region.bits < empty[index].bits + 8
+        answer = region.bloom(SEED) if region.mode == "bloom" else region.fuse(SEED)
+        assert answer.query([m for m, r in zip(members, member_regions) if r == index]).all()  # no false negative
         mask = heavy_regions == index
-        found += int(counts[mask][bloom.query([h for h, r in zip(heavy, heavy_regions) if r == index])].sum())
+        found += int(counts[mask][answer.query([h for h, r in zip(heavy, heavy_regions) if r == index])].sum())
     # the filled filters answer the heavy keys exactly as the choice predicted
     assert found == spared.chosen_lookups
 
