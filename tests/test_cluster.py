@@ -220,7 +220,7 @@ def test_a_build_on_the_cluster_keeps_the_invariants_and_the_bytes_of_a_local_bu
     light_trained = trained - split["heavy"]
     assert ran["featurize_chunk"] == chunks(member_count, light_trained, split["validation"], split["check"], split["heavy"])
     assert ran["score_chunk"] == chunks(member_count, split["validation"], split["check"], split["heavy"])
-    assert ran["fill_chunk"] == chunks(member_count)
+    assert ran["fill_chunk"] == 2 * chunks(member_count)  # the learned artifact and the plain filter
     # members and a sample of held-out keys through every answer path, every held-out key through the service's
     sampled = len(path_sample(list(range(split["heldout"]))))
     assert ran["answer_chunk"] == chunks(member_count, sampled) + chunks(split["heavy"], split["heldout"])
