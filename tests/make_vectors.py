@@ -2,6 +2,7 @@
 
     python tests/make_vectors.py              # rewrite tests/data/format-1.0.vectors.json
     python tests/make_vectors.py --artifact   # first rebuild tests/data/format-1.0.tamis as well
+    python tests/make_vectors.py --format-2   # write tests/data/format-2.0.tamis and its answers
 
 The reference artifact `tests/data/format-1.0.tamis` was written once, by the format-1.0 writer of
 2026-12-02, and stays as it is: every later loader must answer it as its vectors say
@@ -15,6 +16,11 @@ step, one record per key: the key's bytes (hex, and the text when they are UTF-8
 Bloom bit positions probed when its region has a Bloom filter, and the answer. The keys cover
 members, non-members, empty and one-byte keys, non-ASCII text, raw bytes that are not UTF-8, a NUL,
 and a key longer than 240 bytes (xxh3's long-input path).
+
+The format-2.0 reference `tests/data/format-2.0.tamis` is the golden build of tests/golden_build.py
+as written by the format-2.0 writer (a forest, Bloom regions and a binary fuse region); it is kept
+with the answers the reference path gives to the same keys (`format-2.0.answers.json`), which every
+later loader must give too.
 """
 
 from __future__ import annotations
@@ -22,6 +28,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import shutil
 import sys
 import tempfile
 from pathlib import Path
@@ -32,6 +39,8 @@ HERE = Path(__file__).resolve().parent
 DATA = HERE / "data"
 ARTIFACT = DATA / "format-1.0.tamis"
 VECTORS = DATA / "format-1.0.vectors.json"
+ARTIFACT_2 = DATA / "format-2.0.tamis"
+ANSWERS_2 = DATA / "format-2.0.answers.json"
 sys.path.insert(0, str(HERE))
 
 from golden_build import HASH_SEED, build_golden, write_fixed_corpus  # noqa: E402
@@ -41,7 +50,7 @@ from tamis.loader import open_filter  # noqa: E402
 from tamis.query import region_of  # noqa: E402
 from tamis.trees import score_batch  # noqa: E402
 
-# 2026-12-02T00:00:00Z, the build time the reference artifact records.
+# 2026-12-02T00:00:00Z, the build time the reference artifacts record.
 BUILD_EPOCH = "1796169600"
 
 # Keys of every shape a reader must get right (see the module docstring); members and non-members
@@ -80,6 +89,23 @@ def write_reference_artifact(path: Path) -> None:
     filters = build_filters(members, region_of(scores, boundaries), fprs, HASH_SEED)
     package_artifact(path, feature_spec=spec, forest=forest, boundaries=boundaries, region_filters=filters,
                      hash_seed=HASH_SEED, provenance={"built_at": "2026-12-02T00:00:00Z", "purpose": "format-1.0 reference"})
+
+
+def write_format_2_reference(path: Path) -> None:
+    """The golden build as it is: format 2.0, with a forest, Bloom regions and a binary fuse region."""
+    with tempfile.TemporaryDirectory() as work:
+        shutil.copyfile(build_golden(Path(work)), path)
+
+
+def format_2_answers(path: Path) -> dict:
+    """The reference (numpy) path's answer to every key of `vector_keys`, and the mode of its region."""
+    loaded = open_filter(path, answer_path="numpy")
+    keys = vector_keys()
+    regions = region_of(score_batch(loaded.forest, featurize(keys, loaded.feature_spec)), loaded.boundaries)
+    modes = [loaded.info["regions"][int(region)]["mode"] for region in regions]
+    return {"artifact": path.name,
+            "answers": [{"key_hex": key.hex(), "mode": mode, "answer": bool(answer)}
+                        for key, mode, answer in zip(keys, modes, loaded.contains_many(keys).tolist())]}
 
 
 def vector_keys() -> list[bytes]:
@@ -139,8 +165,17 @@ def make_vectors(path: Path) -> dict:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--artifact", action="store_true", help=f"rebuild {ARTIFACT.name} first (changes the reference)")
+    parser.add_argument("--format-2", action="store_true", help=f"write {ARTIFACT_2.name} and {ANSWERS_2.name} instead")
     args = parser.parse_args()
     DATA.mkdir(exist_ok=True)
+    if args.format_2:
+        os.environ["SOURCE_DATE_EPOCH"] = BUILD_EPOCH
+        write_format_2_reference(ARTIFACT_2)
+        made = format_2_answers(ARTIFACT_2)
+        lines = ",\n".join(json.dumps(entry) for entry in made.pop("answers"))
+        ANSWERS_2.write_text(json.dumps(made)[:-1] + ', "answers": [\n' + lines + "\n]}\n", encoding="utf-8")
+        print(f"{ARTIFACT_2} ({ARTIFACT_2.stat().st_size:,} bytes), {ANSWERS_2}")
+        return
     if args.artifact:
         os.environ["SOURCE_DATE_EPOCH"] = BUILD_EPOCH
         write_reference_artifact(ARTIFACT)

@@ -1,4 +1,4 @@
-"""The format-1.0 reference artifact and its test vectors (tests/make_vectors.py wrote both).
+"""The reference artifacts of format 1.0 and 2.0 and their test vectors (tests/make_vectors.py wrote them).
 
 `tests/data/format-1.0.tamis` was written by the format-1.0 writer and is never rewritten: every
 later loader must open it and answer every vector's key exactly as recorded, on every answer path.
@@ -70,6 +70,27 @@ def test_each_step_matches_the_vectors(reference):
         if entry["mode"] == "bloom":
             positions = probe_positions(hash_keys([key], reference.hash_seed), entry["bits"], entry["hashes"])[:, 0]
             assert positions.tolist() == v["probes"]
+
+
+# --- the format-2.0 reference: binary fuse regions beside Bloom -----------------------------------
+FORMAT_2 = json.loads((DATA / "format-2.0.answers.json").read_text(encoding="utf-8"))["answers"]
+
+
+def test_the_format_2_answers_cover_both_filter_kinds_and_both_answers():
+    assert {(entry["mode"], entry["answer"]) for entry in FORMAT_2} >= {("bloom", True), ("bloom", False),
+                                                                         ("fuse", True), ("fuse", False)}
+
+
+@pytest.mark.parametrize("answer_path", ANSWER_PATHS)
+def test_the_format_2_reference_answers_as_recorded_on_every_path(answer_path):
+    if answer_path not in available_paths():
+        pytest.skip("numba is not installed or is disabled")
+    loaded = open_filter(DATA / "format-2.0.tamis", answer_path=answer_path)
+    assert loaded.info["format"] == "2.0"
+    keys = [bytes.fromhex(entry["key_hex"]) for entry in FORMAT_2]
+    expected = [entry["answer"] for entry in FORMAT_2]
+    assert loaded.contains_many(keys).tolist() == expected
+    assert [loaded.contains(key) for key in keys] == expected
 
 
 # --- a second reader, written from FORMAT.md alone -----------------------------------------------
