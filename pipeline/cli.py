@@ -120,16 +120,11 @@ def plain_filter_text(plain: dict) -> str:
     learned, bytes_ = plain["learned_bytes"], plain["plain_bytes"]
     if plain["model_pays"]:
         return f"  a plain filter (no model) certified the same way: {bytes_:,} bytes; the model saves {1 - learned / bytes_:.1%}"
-    if plain["published"] == "plain":
-        outcome = "the plain filter is published instead"
-    elif plain["when_model_does_not_pay"] == "refuse":
-        outcome = "the gate refuses the build"
-    else:
-        outcome = "the learned artifact is published anyway"
+    from tamis.report_page import plain_filter_outcome
+
     return (
         f"  WARNING the model does not pay: the learned artifact takes {learned:,} bytes against {bytes_:,} for a plain "
-        f"filter (no model) certified the same way; {outcome} (gate.when_model_does_not_pay = "
-        f"\"{plain['when_model_does_not_pay']}\")"
+        f"filter (no model) certified the same way; {plain_filter_outcome(plain)}"
     )
 
 

@@ -377,15 +377,19 @@ def plain_filter_text(plain: dict) -> str:
     if plain["model_pays"]:
         return (f"The model pays: the learned artifact takes {learned:,} bytes, {1 - learned / bytes_:.1%} less than "
                 f"the {bytes_:,} of a plain filter (no model) certified the same way.")
+    return (f"The model does not pay: the learned artifact takes {learned:,} bytes against {bytes_:,} for a plain "
+            f"filter (no model) certified the same way; {plain_filter_outcome(plain)}.")
+
+
+def plain_filter_outcome(plain: dict) -> str:
+    """What the build did with a learned artifact that does not pay, and the setting that chose it."""
     if plain["published"] == "plain":
         outcome = "the plain filter is published instead"
     elif plain["when_model_does_not_pay"] == "refuse":
         outcome = "the gate refuses the build"
     else:
         outcome = "the learned artifact is published anyway"
-    return (f"The model does not pay: the learned artifact takes {learned:,} bytes against {bytes_:,} for a plain "
-            f"filter (no model) certified the same way; {outcome} "
-            f"(gate.when_model_does_not_pay = \"{plain['when_model_does_not_pay']}\").")
+    return f"{outcome} (gate.when_model_does_not_pay = \"{plain['when_model_does_not_pay']}\")"
 
 
 def draw_figures(report: dict, scores: ScoreSample) -> dict[str, str]:
