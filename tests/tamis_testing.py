@@ -194,3 +194,19 @@ def build_artifact(path, corpus, target: float, how, plan=None, provenance: dict
     package_artifact(path, feature_spec=spec, forest=forest, boundaries=boundaries,
                      region_filters=filters, hash_seed=HASH_SEED, provenance=provenance or PROVENANCE)
     return len(boundaries) + 1
+
+
+# The start of a `python -c` script that makes the top-level packages named in sys.argv[1] (commas)
+# impossible to import, as on a machine where they are not installed.
+REFUSE_IMPORTS = """
+import importlib.abc, sys
+BLOCKED = set(sys.argv[1].split(","))
+
+class Refuse(importlib.abc.MetaPathFinder):
+    def find_spec(self, name, path=None, target=None):
+        if name.split(".")[0] in BLOCKED:
+            raise ImportError(f"{name} is blocked in this test")
+        return None
+
+sys.meta_path.insert(0, Refuse())
+"""

@@ -15,6 +15,7 @@ import sys
 from pathlib import Path
 
 from tamis.cli import BUILD_INSTALL, BUILD_STACK
+from tamis_testing import REFUSE_IMPORTS
 
 # The loader's import budget without numba (TAMIS_NUMPY_ONLY=1), numpy's own import included, in
 # CPU seconds (the wall clock also counts the time other processes hold the CPU), best of
@@ -37,18 +38,6 @@ import tamis.loader
 print(dependencies, time.process_time() - cpu)
 """
 
-_REFUSE = """
-import importlib.abc, sys
-BLOCKED = set(sys.argv[1].split(","))
-
-class Refuse(importlib.abc.MetaPathFinder):
-    def find_spec(self, name, path=None, target=None):
-        if name.split(".")[0] in BLOCKED:
-            raise ImportError(f"{name} is blocked in this test")
-        return None
-
-sys.meta_path.insert(0, Refuse())
-"""
 
 
 def numpy_only_env() -> dict:
@@ -81,7 +70,7 @@ def test_importing_the_corpus_stage_does_not_import_lightgbm():
 
 
 def test_build_commands_without_the_build_stack_say_how_to_install_it(tmp_path):
-    code = _REFUSE + "from tamis.cli import main\nsys.exit(main(sys.argv[2:]))\n"
+    code = REFUSE_IMPORTS + "from tamis.cli import main\nsys.exit(main(sys.argv[2:]))\n"
     config = tmp_path / "nightly.toml"
     config.write_text("[target]\nfpr = 0.01\n", encoding="utf-8")
     blocked = ",".join(BUILD_STACK)
@@ -91,7 +80,7 @@ def test_build_commands_without_the_build_stack_say_how_to_install_it(tmp_path):
         assert BUILD_INSTALL in done.stderr and "Traceback" not in done.stderr
         assert f"`tamis {command[0]}` needs the build stack" in done.stderr
     # the hook really refuses: the build stack cannot be imported under it
-    probe = _REFUSE + "import lightgbm\n"
+    probe = REFUSE_IMPORTS + "import lightgbm\n"
     assert subprocess.run([sys.executable, "-c", probe, blocked], capture_output=True, text=True).returncode != 0
 
 
@@ -101,7 +90,7 @@ def test_a_plain_install_answers_the_reference_artifact(tmp_path):
     # simulates the missing packages instead.)
     data = Path(__file__).resolve().parent / "data"
     vectors = json.loads((data / "format-1.0.vectors.json").read_text(encoding="utf-8"))["vectors"]
-    code = _REFUSE + (
+    code = REFUSE_IMPORTS + (
         "import json\n"
         "from tamis.loader import open_filter\n"
         "keys = [bytes.fromhex(h) for h in json.loads(sys.stdin.read())]\n"

@@ -24,6 +24,7 @@ from tamis.package import package_artifact
 from tamis.query import region_of
 from tamis.regions import RegionSettings, plan_regions
 from tamis.trees import score_batch
+from tamis_testing import REFUSE_IMPORTS
 
 TARGET_FPR = 0.02
 HASH_SEED = 0xE3B0C442
@@ -449,23 +450,14 @@ def test_a_newer_minor_with_unknown_fields_and_sections_opens(built, tmp_path):
 
 # --- no build stack in the loader's process -----------------------------------------------------
 
-_BLOCKED_SCRIPT = """
-import importlib.abc, sys
 # the build stack, and numba: the loader then runs its plain numpy path
-BLOCKED = {"polars", "lightgbm", "scipy", "prefect", "pandas", "pyarrow", "sklearn", "matplotlib", "numba", "llvmlite"}
-
-class Refuse(importlib.abc.MetaPathFinder):
-    def find_spec(self, name, path=None, target=None):
-        if name.split(".")[0] in BLOCKED:
-            raise ImportError(f"{name} is blocked in this test")
-        return None
-
-sys.meta_path.insert(0, Refuse())
+_BLOCKED = "polars,lightgbm,scipy,prefect,pandas,pyarrow,sklearn,matplotlib,numba,llvmlite"
+_BLOCKED_SCRIPT = REFUSE_IMPORTS + """
 from tamis import compiled
 from tamis.loader import open_filter
 assert not compiled.ENABLED
 keys = [line.encode() for line in sys.stdin.read().split("\\n")]
-loaded = open_filter(sys.argv[1])
+loaded = open_filter(sys.argv[2])
 many = loaded.contains_many(keys)
 one = [loaded.contains(k) for k in keys]
 assert many.tolist() == one
@@ -476,10 +468,10 @@ print("".join("1" if a else "0" for a in many))
 def test_the_loader_works_where_the_build_stack_cannot_be_imported(built):
     keys = [k.decode() for k in built["members"][:200] + built["fresh"][:800]]
     expected = open_filter(built["path"]).contains_many(keys)
-    done = subprocess.run([sys.executable, "-c", _BLOCKED_SCRIPT, str(built["path"])], input="\n".join(keys),
+    done = subprocess.run([sys.executable, "-c", _BLOCKED_SCRIPT, _BLOCKED, str(built["path"])], input="\n".join(keys),
                           capture_output=True, text=True, check=True)
     assert done.stdout.strip() == "".join("1" if a else "0" for a in expected)
     # the blocker really blocks: importing the build stack in the same way fails
     for module in ("polars", "numba"):
-        probe = _BLOCKED_SCRIPT.split("from tamis import compiled")[0] + f"import {module}\n"
-        assert subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True).returncode != 0
+        probe = REFUSE_IMPORTS + f"import {module}\n"
+        assert subprocess.run([sys.executable, "-c", probe, _BLOCKED], capture_output=True, text=True).returncode != 0
