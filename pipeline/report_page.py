@@ -40,7 +40,21 @@ FIGURE_DPI = 100
 # the sparser one (members in the low-score bins) is not all noise.
 SCORE_BINS = 80
 
-MEMBER_COLOUR, NONMEMBER_COLOUR, BOUNDARY_COLOUR = "#c2410c", "#1d4ed8", "#6b7280"
+# The page's palette, ours and in one place: warm ember for members, deep lake blue for non-members,
+# stone grey for boundaries and the container's rest, on paper-white with near-black ink. Every text
+# colour keeps a contrast ratio of at least 4.5 against the page (tests/test_report_page.py).
+PALETTE = {
+    "ink": "#1e2527",          # body text
+    "rule": "#c8c1b4",         # table borders
+    "shade": "#f3efe6",        # table heads
+    "page": "#ffffff",         # background
+    "passed": "#2d6a3f",       # the gate passed
+    "refused": "#a4262c",      # the gate refused
+    "member": "#a0481a",       # members, model bytes, the target line
+    "nonmember": "#2a5b8c",    # non-members, filter bytes
+    "boundary": "#6d6962",     # region boundaries, the lower bound, header and layout
+}
+MEMBER_COLOUR, NONMEMBER_COLOUR, BOUNDARY_COLOUR = PALETTE["member"], PALETTE["nonmember"], PALETTE["boundary"]
 
 
 @dataclass(frozen=True)
@@ -111,10 +125,13 @@ def regions_figure(regions: Sequence[dict]) -> Figure:
     index = np.arange(len(regions))
     labels = [f"R{i}" for i in index]
     fprs = np.array([region["fpr"] for region in regions], dtype=np.float64)
-    shown = np.where(fprs > 0, fprs, np.nan)  # a "no" region has budget 0: nothing to draw on a log axis
+    shown = np.where(fprs > 0, fprs, np.nan)  # budget 0 has no bar on a log axis: it is written instead
     budget_ax.bar(index, shown, color=NONMEMBER_COLOUR)
     budget_ax.set_yscale("log")
     budget_ax.set_ylabel("false-positive budget (log scale)")
+    for i in np.flatnonzero(fprs == 0):
+        budget_ax.annotate("0: answers no", (i, 0), xycoords=("data", "axes fraction"), ha="center", va="bottom",
+                           fontsize=8, rotation=90, color=BOUNDARY_COLOUR)
     bytes_ax.bar(index, [region["filter_bytes"] for region in regions], color=MEMBER_COLOUR)
     bytes_ax.set_ylabel("backup filter bytes")
     for ax in (budget_ax, bytes_ax):
@@ -161,13 +178,13 @@ def drift_figure(drift: dict, heldout: dict, false_negatives: int, target: float
     rates = [drift["heldout_fpr"], heldout["fpr"]]
     uppers = [drift["heldout_fpr_upper"], heldout["fpr_upper"]]
     fpr_ax.bar([0, 1], rates, color=[BOUNDARY_COLOUR, NONMEMBER_COLOUR])
-    fpr_ax.plot([0, 1], uppers, linestyle="none", marker="_", markersize=30, color="black", label="upper bound")
+    fpr_ax.plot([0, 1], uppers, linestyle="none", marker="_", markersize=30, color=PALETTE["ink"], label="upper bound")
     fpr_ax.axhline(target, color=MEMBER_COLOUR, linestyle="--", label="target")
     fpr_ax.set_xticks([0, 1], names)
     fpr_ax.set_ylabel("held-out false-positive rate")
     fpr_ax.yaxis.set_major_formatter(PercentFormatter(xmax=1.0))  # percent, as in the tables
-    fpr_ax.set_ylim(0, max(target, *uppers) * 1.3)  # headroom for the legend above the bars
-    fpr_ax.legend(loc="upper left", ncols=2, fontsize=8)
+    fpr_ax.set_ylim(0, max(target, *uppers) * 1.15)
+    figure.legend(loc="outside upper center", ncols=2, fontsize=8, frameon=False)  # above the axes, never over a bar
     if not any(missed):
         return figure
     missed_ax = axes[1]
@@ -320,14 +337,14 @@ def drift_rows(drift: dict, report: dict) -> list[tuple[str, object]]:
     ]
 
 
-_STYLE = """
-body { font-family: system-ui, sans-serif; margin: 2em auto; max-width: 62em; color: #111827; }
-h1 { font-size: 1.4em; } h2 { font-size: 1.15em; margin-top: 1.6em; }
-table { border-collapse: collapse; margin: 0.6em 0; font-size: 0.9em; }
-th, td { border: 1px solid #d1d5db; padding: 0.25em 0.6em; text-align: left; vertical-align: top; }
-thead th { background: #f3f4f6; }
-.passed { color: #15803d; } .refused { color: #b91c1c; }
-img { display: block; max-width: 100%; }
+_STYLE = f"""
+body {{ font-family: system-ui, sans-serif; margin: 2em auto; max-width: 62em; color: {PALETTE["ink"]}; background: {PALETTE["page"]}; }}
+h1 {{ font-size: 1.4em; }} h2 {{ font-size: 1.15em; margin-top: 1.6em; }}
+table {{ border-collapse: collapse; margin: 0.6em 0; font-size: 0.9em; }}
+th, td {{ border: 1px solid {PALETTE["rule"]}; padding: 0.25em 0.6em; text-align: left; vertical-align: top; }}
+thead th {{ background: {PALETTE["shade"]}; }}
+.passed {{ color: {PALETTE["passed"]}; }} .refused {{ color: {PALETTE["refused"]}; }}
+img {{ display: block; max-width: 100%; }}
 """
 
 

@@ -213,3 +213,69 @@ def test_the_strata_show_on_the_page_and_an_aim_below_half_the_target_is_said(bu
     said = cli.strata_lines(strata)
     assert len(said) == 2 and "below half the target" in said[1]
     assert "below half the target" in text_of(parse(render_report_page(report, scores)))
+
+
+def relative_luminance(hex_colour: str) -> float:
+    """WCAG 2.1 relative luminance of an sRGB colour (W3C, Web Content Accessibility Guidelines 2.1,
+    definition of 'relative luminance')."""
+    channels = [int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)]
+    linear = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
+    return 0.2126 * linear[0] + 0.7152 * linear[1] + 0.0722 * linear[2]
+
+
+def contrast_ratio(a: str, b: str) -> float:
+    """(L1 + 0.05) / (L2 + 0.05), lighter over darker (WCAG 2.1, 'contrast ratio')."""
+    high, low = sorted((relative_luminance(a), relative_luminance(b)), reverse=True)
+    return (high + 0.05) / (low + 0.05)
+
+
+def test_the_palette_is_in_one_place_and_every_text_colour_is_readable():
+    """Every colour the page and its figures use comes from report_page.PALETTE, and each colour
+    text is written in meets WCAG 2.1's 4.5:1 minimum for normal text against the page and the
+    table heads (level AA, W3C)."""
+    import inspect
+    import re
+
+    from tamis import report_page
+
+    source = inspect.getsource(report_page)
+    literals = set(re.findall(r"#[0-9a-fA-F]{6}\b", source))
+    assert literals == set(report_page.PALETTE.values())
+    assert all(source.count(colour) == 1 for colour in literals)  # written once, in PALETTE
+    assert '"black"' not in source and "'black'" not in source
+    # a check of the formula itself: black on white is 21:1, the published maximum
+    assert contrast_ratio("#000000", "#ffffff") == pytest.approx(21.0)
+    for text in ("ink", "passed", "refused", "member", "nonmember", "boundary"):
+        for ground in ("page", "shade"):
+            ratio = contrast_ratio(report_page.PALETTE[text], report_page.PALETTE[ground])
+            assert ratio >= 4.5, (text, ground, ratio)
+
+
+def test_a_region_with_budget_zero_is_labelled_on_the_budget_plot():
+    from tamis.report_page import regions_figure
+
+    regions = [
+        {"mode": "no", "fpr": 0.0, "filter_bytes": 0},
+        {"mode": "filter", "kind": "bloom", "hashes": 4, "fpr": 0.02, "filter_bytes": 100},
+        {"mode": "yes", "fpr": 1.0, "filter_bytes": 0},
+    ]
+    figure = regions_figure(regions)
+    budget_ax = figure.axes[0]
+    assert [t.get_text() for t in budget_ax.texts] == ["0: answers no"]
+
+
+def test_the_drift_legend_stays_inside_the_figure(builds):
+    """The legend's box, once drawn, lies within the figure's pixels and overlaps no axes."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    report = builds[1].report
+    figure = drift_figure(report["drift"], report["heldout"], report["false_negatives"], report["target_fpr"])
+    canvas = FigureCanvasAgg(figure)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    width, height = canvas.get_width_height()
+    (legend,) = figure.legends
+    box = legend.get_window_extent(renderer)
+    assert 0 <= box.x0 and box.x1 <= width and 0 <= box.y0 and box.y1 <= height
+    for ax in figure.axes:
+        assert not box.overlaps(ax.get_window_extent(renderer))
