@@ -385,11 +385,14 @@ class _Stages:
         return report
 
     @contextmanager
-    def stage(self, name: str) -> Iterator[None]:
+    def stage(self, name: str) -> Iterator[dict]:
+        """Runs the body as stage `name`; the body may set the yielded dict's "note" to say how the
+        stage ended when "done" would mislead (a refused build's publish stage publishes nothing)."""
         self.progress(StageEvent(name, "start"))
         started = time.perf_counter()
+        ending = {"note": ""}
         try:
-            yield
+            yield ending
         except BadInput:
             self.progress(StageEvent(name, "failed", seconds=time.perf_counter() - started))
             raise
@@ -397,7 +400,7 @@ class _Stages:
             self.progress(StageEvent(name, "failed", seconds=time.perf_counter() - started))
             raise BuildFailed(name, error) from error
         self.timings[name] = round(time.perf_counter() - started, 3)
-        self.progress(StageEvent(name, "done", seconds=self.timings[name]))
+        self.progress(StageEvent(name, "done", seconds=self.timings[name], note=ending["note"]))
 
     def chunks(self, name: str) -> ChunkMap:
         """A ChunkMap for stage `name`: one task run a chunk on the flow's task runner, all submitted
@@ -520,13 +523,14 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 timings=stages.timings,
             )
             figures = stages.run("report", write_reports, staging, summary, scores)
-            with stages.stage("publish"):
+            with stages.stage("publish") as ending:
                 if passed:
                     version = publish.publish_staging(store, staging, config.store.keep)
                     folder = store / str(version)
                 else:
                     version = None
                     folder = publish.refuse_staging(store, staging, provenance["build_id"])
+                    ending["note"] = "refused: nothing published, the version in service stays"
             summary["paths"]["artifact"] = str(folder / publish.ARTIFACT_NAME)
             summary["timings"] = {**stages.timings, "total": round(time.perf_counter() - started, 3)}
             finish_reports(folder, summary, figures)

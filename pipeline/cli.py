@@ -153,15 +153,26 @@ def static_text(baseline: dict) -> list[str]:
     return [f"  best plain static filter ({baseline['static_kind']}) {baseline['static_bytes']:,} bytes: ratio {baseline['static_ratio']:.3f}"]
 
 
+def cleaning_text(corpus: dict) -> list[str]:
+    """Repeated rows and keys on both sides, when the corpus had any."""
+    if not (corpus.get("member_duplicates") or corpus.get("non_member_duplicates") or corpus.get("conflicts")):
+        return []
+    return [f"  repeated rows merged: {corpus['member_duplicates']:,} member, {corpus['non_member_duplicates']:,} non-member; "
+            f"keys on both sides kept as members: {corpus['conflicts']:,}"]
+
+
 def summary_text(report: dict, folder: Path) -> str:
+    from tamis.report_page import size_parts_text
+
     size, base, held = report["size"], report["baseline"], report["heldout"]
     status = f"published version {report['version']}" if report["gate"]["passed"] else "REFUSED by the gate"
     lines = [
         f"{status}: {folder}",
         f"  members {report['corpus']['members']:,}, non-members {report['corpus']['non_members']:,}, "
         f"lookups {report['corpus']['lookups']:,}",
-        f"  size {size['total_bytes']:,} bytes ({size['bits_per_member']:.2f} bits/member; model {size['model_bytes']:,}, "
-        f"filters {size['filter_bytes']:,})",
+        *cleaning_text(report["corpus"]),
+        f"  size {size['total_bytes']:,} bytes ({size['bits_per_member']:.2f} bits/member; model / filters / header and "
+        f"layout {size_parts_text(size)})",
         f"  plain Bloom filter's bits at the target (no header, no margin for the measurement) "
         f"{base['bloom_bytes']:,} bytes: ratio {base['ratio']:.3f}",
         *static_text(base),

@@ -23,7 +23,8 @@ class StageEvent:
 
     kind: "start", "step" (it advanced), "done" or "failed". For "step", `done` units of `total`
     are finished (`total` None when the stage cannot know it in advance) and `note` may say more;
-    for "done" and "failed", `seconds` is the stage's elapsed time.
+    for "done" and "failed", `seconds` is the stage's elapsed time, and a "done" `note` says how it
+    ended when "done" alone would mislead (a refused build publishes nothing).
     """
 
     stage: str
@@ -79,7 +80,7 @@ class LineProgress:
         if event.kind == "step" and self._clock() - self._last_line >= self._interval:
             self._write(event.stage, " ".join(filter(None, (count_text(event), event.note))))
         elif event.kind == "done":
-            self._write(event.stage, f"done in {event.seconds:.1f} s")
+            self._write(event.stage, f"{event.note or 'done'} in {event.seconds:.1f} s")
 
 
 class LiveProgress:
@@ -135,6 +136,8 @@ class LiveProgress:
             self._display.update(task, completed=event.done, total=event.total, count=count_text(event), note=event.note)
         elif event.kind == "done":
             self._finish(event.stage)
+            if event.note:
+                self._display.update(task, note=event.note)
         else:
             self._display.update(task, note="[red]FAILED[/]")
             self._display.stop_task(task)

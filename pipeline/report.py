@@ -11,7 +11,7 @@ from pathlib import Path
 from tamis.baselines import best_static_filter
 from tamis.sizing import bloom_bits, lower_bound_bits
 from tamis.config import BuildConfig
-from tamis.corpus import Corpus
+from tamis.corpus import AUTO_HEAVY_COUNT, Corpus
 from tamis.drift import Drift
 from tamis.hot_keys import Sparing
 from tamis.verify import GateCheck, PlainComparison, Verification, refusal_reasons
@@ -27,6 +27,14 @@ def settings_of(config: BuildConfig) -> dict:
         return str(value) if isinstance(value, Path) else value
 
     return plain(dataclasses.asdict(config))
+
+
+def tau_rule(heavy_count: int) -> str:
+    """How tau was chosen: corpus.heavy_count when set, the automatic rule when it is 0."""
+    if heavy_count:
+        return f"set: corpus.heavy_count = {heavy_count:,}"
+    return (f"automatic (corpus.heavy_count = 0): {AUTO_HEAVY_COUNT} lookups, from which a key's window count is "
+            f"known to within 25% at 95% confidence")
 
 
 def _region_rows(plan, filters) -> list[dict]:
@@ -99,6 +107,7 @@ def build_report(
             **verification.heldout.strata_report(),
             "aim_fpr": aim_fpr,
             "aim_below_half_target": aim_fpr < target / 2,
+            "tau_rule": tau_rule(config.corpus.heavy_count),
             "hot_keys": sparing.as_report(),
         },
         "false_negatives": verification.false_negatives,
@@ -107,6 +116,8 @@ def build_report(
             "total_bytes": total_bytes,
             "model_bytes": choice.forest.nbytes,
             "filter_bytes": sum(f.nbytes for f in filters),
+            # the container's magic, msgpack header, section table and alignment padding
+            "layout_bytes": total_bytes - choice.forest.nbytes - sum(f.nbytes for f in filters),
             "bits_per_member": total_bytes * 8 / members,
         },
         "baseline": {

@@ -262,6 +262,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("target false-positive rate", _percent(report["target_fpr"])),
         ("planned for (aim)", _percent(report["aim_fpr"])),
         ("members", _count(corpus["members"])),
+        *corpus_cleaning_rows(corpus),
         ("non-members (train / validation / held-out)",
          f"{corpus['non_members']:,} ({split['train']:,} / {split['validation']:,} / {split['heldout']:,})"),
         ("lookups", _count(corpus["lookups"]) + ("" if corpus["has_counts"] else " (no counts: one a key)")),
@@ -272,7 +273,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("expected rate on validation lookups", _percent(report["expected_fpr"])),
         ("false negatives", report["false_negatives"]),
         ("artifact bytes", _count(size["total_bytes"])),
-        ("model bytes / filter bytes", f"{size['model_bytes']:,} / {size['filter_bytes']:,}"),
+        ("model / filters / header and layout bytes", size_parts_text(size)),
         ("bits per member", f"{size['bits_per_member']:.2f}"),
         ("plain Bloom filter bytes at the target, bits alone (ratio)", f"{base['bloom_bytes']:,} ({base['ratio']:.3f})"),
         *([("best plain static filter bytes (kind, ratio)",
@@ -283,11 +284,28 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
     ]
 
 
+def size_parts_text(size: dict) -> str:
+    """The artifact's three parts, which add up to its size (reports before `layout_bytes` derive it)."""
+    layout = size.get("layout_bytes", size["total_bytes"] - size["model_bytes"] - size["filter_bytes"])
+    return f"{size['model_bytes']:,} / {size['filter_bytes']:,} / {layout:,}"
+
+
+def corpus_cleaning_rows(corpus: dict) -> list[tuple[str, object]]:
+    """What the corpus stage removed or relabelled: repeated rows and keys on both sides."""
+    if "member_duplicates" not in corpus:
+        return []
+    return [
+        ("repeated rows merged (members / non-members)",
+         f"{corpus['member_duplicates']:,} / {corpus['non_member_duplicates']:,}"),
+        ("keys listed on both sides (kept as members)", _count(corpus["conflicts"])),
+    ]
+
+
 def strata_rows(strata: dict) -> list[tuple[str, object]]:
     """The two strata of the bound: heavy keys answered exactly, the tail sampled."""
     aim_note = " (below half the target: the held-out tail is too small to aim closer)" if strata["aim_below_half_target"] else ""
     return [
-        ("tau (heavy from this many lookups)", _count(strata["tau"])),
+        ("tau (heavy from this many lookups)", _count(strata["tau"]) + (f": {strata['tau_rule']}" if "tau_rule" in strata else "")),
         ("heavy keys / their lookups", f"{strata['heavy_keys']:,} / {strata['heavy_lookups']:,}"),
         ("heavy share of lookups", _percent(strata["heavy_share"])),
         ("heavy false positives (keys / share of lookups)",

@@ -72,3 +72,13 @@ def test_the_live_display_draws_every_stage_and_leaves_it_on_screen():
     drawn = screen.getvalue()
     assert "start-up" in drawn and "features" in drawn and "100% (1,000 of 1,000 keys)" in drawn
     assert "model" in drawn and "4 checkpoints priced" in drawn and "FAILED" in drawn
+
+
+def test_a_stage_that_ended_otherwise_than_done_says_how():
+    """A refused build's publish stage publishes nothing: its line must not say "done"."""
+    stream, clock = io.StringIO(), Clock()
+    progress = LineProgress(stream, interval=10.0, clock=clock)
+    progress(StageEvent("publish", "start"))
+    clock.now += 0.5
+    progress(StageEvent("publish", "done", seconds=0.5, note="refused: nothing published"))
+    assert stream.getvalue().splitlines() == ["[    0.5 s] publish   refused: nothing published in 0.5 s"]

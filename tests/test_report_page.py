@@ -279,3 +279,26 @@ def test_the_drift_legend_stays_inside_the_figure(builds):
     assert 0 <= box.x0 and box.x1 <= width and 0 <= box.y0 and box.y1 <= height
     for ax in figure.axes:
         assert not box.overlaps(ax.get_window_extent(renderer))
+
+
+def test_the_size_parts_add_up_and_the_cleaning_is_said(builds):
+    """model + filters + header and layout = the artifact's bytes, on the page and in the summary;
+    repeated rows and conflicts are named in both."""
+    from tamis.cli import summary_text
+
+    first, _ = builds
+    report = first.report
+    size = report["size"]
+    assert size["model_bytes"] + size["filter_bytes"] + size["layout_bytes"] == size["total_bytes"]
+    assert size["layout_bytes"] > 0
+    rows = {row.findtext("th"): row.findtext("td") for row in parse(first.page.read_text(encoding="utf-8")).iter("tr")}
+    assert rows["model / filters / header and layout bytes"] == (
+        f"{size['model_bytes']:,} / {size['filter_bytes']:,} / {size['layout_bytes']:,}")
+    corpus = report["corpus"]
+    assert rows["keys listed on both sides (kept as members)"] == f"{corpus['conflicts']:,}"
+    assert "automatic (corpus.heavy_count = 0)" in rows["tau (heavy from this many lookups)"]
+    summary = summary_text(report, first.folder)
+    assert f"{size['layout_bytes']:,}" in summary
+    dirty = {**report, "corpus": {**corpus, "member_duplicates": 5_000, "conflicts": 100}}
+    assert "repeated rows merged: 5,000 member" in summary_text(dirty, first.folder)
+    assert "keys on both sides kept as members: 100" in summary_text(dirty, first.folder)
