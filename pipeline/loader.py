@@ -171,9 +171,10 @@ class MembershipFilter:
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
         """For each key, True when it may be a member and False when it surely is not.
 
-        Keys are str (UTF-8) or bytes, in a list, tuple, any iterable, a 1-d numpy array, or a
-        polars Series of dtype String or Binary. A numpy "S" array drops trailing NUL bytes of its
-        elements (numpy's rule), so pass keys that may end in NUL as a list of bytes.
+        Keys are str (UTF-8) or bytes, in any form of `tamis.query.KEY_BATCH_FORMS`: a list, tuple
+        or other iterable, a 1-d numpy array (dtype object; or "S"/"U" when every element fills the
+        width, since numpy drops an element's trailing NULs: a TypeError says so otherwise), or a
+        polars Series of dtype String or Binary.
         """
         return self.answer_packed(pack_batch(keys))
 

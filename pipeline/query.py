@@ -164,6 +164,38 @@ def _pack_polars(series) -> PackedKeys:
     return PackedKeys(buffer, offsets)
 
 
+# Every form of a batch of keys that `contains_many` answers (tests/test_loader.py asks members
+# ending in NUL, non-ASCII and of the longest allowed length through each): a list or tuple of str
+# (UTF-8) or bytes, any other iterable of them, a 1-d numpy array of dtype object holding them, a
+# 1-d numpy array of dtype "S" or "U" whose elements all fill its width, and a polars Series of
+# dtype String or Binary.
+KEY_BATCH_FORMS = ("list", "tuple", "iterable", "numpy object", "numpy S", "numpy U", "polars String", "polars Binary")
+
+
+def _pack_fixed_width(keys: np.ndarray) -> PackedKeys:
+    """A numpy "S" or "U" array, packed from its own buffer when every element fills the width.
+
+    numpy pads a shorter element with NUL and drops trailing NULs when it reads one, so b"tok" and
+    b"tok\x00" are the same element of an "S4" array: only an element as long as the width is known
+    whole. Any shorter element is refused (TypeError) rather than guessed, since a guess could
+    answer a member ending in NUL "no"."""
+    width = keys.dtype.itemsize // (4 if keys.dtype.kind == "U" else 1)
+    lengths = np.char.str_len(keys) if len(keys) else np.zeros(0, dtype=np.int64)
+    short = np.flatnonzero(lengths != width)
+    if len(short):
+        at = int(short[0])
+        raise TypeError(
+            f"a numpy {keys.dtype} array cannot say whether its keys end in NUL: numpy pads shorter elements with NUL "
+            f"and drops trailing NULs, so element {at} ({keys[at]!r}, {int(lengths[at])} of {width} places) may stand for "
+            f"several keys; pass a list, or np.array(keys, dtype=object), or a polars Series"
+        )
+    if keys.dtype.kind == "S":
+        buffer = np.ascontiguousarray(keys).tobytes()
+        return PackedKeys(buffer, np.arange(len(keys) + 1, dtype=np.int64) * width)
+    text = np.ascontiguousarray(keys, dtype=f"<U{width}").tobytes().decode("utf-32-le")
+    return _pack_list([text[i * width : (i + 1) * width] for i in range(len(keys))])
+
+
 def pack_batch(keys: Iterable[str | bytes] | np.ndarray | Any) -> PackedKeys:
     """Any batch that `contains_many` takes, packed; TypeError for anything else."""
     if isinstance(keys, (str, bytes)):
@@ -175,6 +207,8 @@ def pack_batch(keys: Iterable[str | bytes] | np.ndarray | Any) -> PackedKeys:
             raise TypeError(
                 f"a numpy batch of keys must be a 1-d array of str or bytes, got {keys.dtype} of shape {keys.shape}"
             )
+        if keys.dtype.kind in "SU":
+            return _pack_fixed_width(keys)
         keys = keys.tolist()
     elif not isinstance(keys, (list, tuple)):
         keys = list(keys)

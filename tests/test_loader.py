@@ -21,7 +21,8 @@ from tamis.filters import build_filters
 from tamis.loader import FilterLoadError, open_filter
 from tamis.booster import compile_booster
 from tamis.package import package_artifact
-from tamis.query import region_of
+from tamis.config import CorpusSettings
+from tamis.query import KEY_BATCH_FORMS, region_of
 from tamis.regions import RegionSettings, plan_regions
 from tamis.trees import score_batch
 from tamis_testing import REFUSE_IMPORTS
@@ -190,8 +191,9 @@ def test_key_types(built):
     assert np.array_equal(loaded.contains_many(as_str), as_bytes)
     assert np.array_equal(loaded.contains_many(tuple(keys)), as_bytes)
     assert np.array_equal(loaded.contains_many(iter(keys)), as_bytes)
-    assert np.array_equal(loaded.contains_many(np.array(as_str)), as_bytes)
-    assert np.array_equal(loaded.contains_many(np.array(keys)), as_bytes)
+    same_width = [i for i, k in enumerate(keys) if len(k) == len(keys[0])]  # numpy "S"/"U" need full-width elements
+    assert np.array_equal(loaded.contains_many(np.array([as_str[i] for i in same_width])), as_bytes[same_width])
+    assert np.array_equal(loaded.contains_many(np.array([keys[i] for i in same_width])), as_bytes[same_width])
     assert np.array_equal(loaded.contains_many(np.array(keys, dtype=object)), as_bytes)
     assert loaded.contains(as_str[0]) == loaded.contains(keys[0])
     assert loaded.contains_many([]).shape == (0,)
@@ -475,3 +477,62 @@ def test_the_loader_works_where_the_build_stack_cannot_be_imported(built):
     for module in ("polars", "numba"):
         probe = REFUSE_IMPORTS + f"import {module}\n"
         assert subprocess.run([sys.executable, "-c", probe, _BLOCKED], capture_output=True, text=True).returncode != 0
+
+
+# The longest key a build accepts by default (corpus.max_key_bytes).
+LONGEST_KEY = CorpusSettings().max_key_bytes
+
+
+def tricky_members() -> list[bytes]:
+    """Members a byte-losing input would miss: trailing and interior NUL, non-ASCII (valid UTF-8,
+    so every str form can carry them too), and two keys of the longest allowed length."""
+    long_a = ("\u00e9\x00" + "k" * (LONGEST_KEY - 6) + "\u2603").encode()  # 2 + 1 + n-6 + 3 bytes, n-3 characters
+    long_b = ("\u00fc" * 3 + "\x00" + "q" * (LONGEST_KEY - 7)).encode()  # 6 + 1 + n-7 bytes, n-3 characters
+    assert len(long_a) == len(long_b) == LONGEST_KEY and len(long_a.decode()) == len(long_b.decode())
+    return [b"tok\x00", b"x\x00\x00", b"\x00", "h\u00e9ros_\u2603".encode(), b"a\x00b", long_a, long_b]
+
+
+@pytest.fixture(scope="module")
+def tricky(built, tmp_path_factory):
+    """The module's forest and plan, with the tricky members inserted beside the others."""
+    members = built["members"] + tricky_members()
+    regions = region_of(score_batch(built["forest"], featurize(members, built["spec"])), built["plan"].boundaries)
+    filters = build_filters(members, regions, built["plan"].filters, HASH_SEED)
+    path = tmp_path_factory.mktemp("tricky") / "filter.tamis"
+    package_artifact(path, feature_spec=built["spec"], forest=built["forest"], boundaries=built["plan"].boundaries,
+                     region_filters=filters, hash_seed=HASH_SEED, provenance=PROVENANCE)
+    return open_filter(path)
+
+
+def batch_in_form(form: str, keys: list[bytes]):
+    """The keys in one of query.KEY_BATCH_FORMS; fixed-width forms get the keys that fill one width."""
+    import polars as pl
+
+    if form in ("numpy S", "numpy U"):
+        keys = [k for k in keys if len(k) == LONGEST_KEY]
+    text = [k.decode() for k in keys]
+    return keys, {
+        "list": lambda: list(text),
+        "tuple": lambda: tuple(keys),
+        "iterable": lambda: iter(keys),
+        "numpy object": lambda: np.array(keys, dtype=object),
+        "numpy S": lambda: np.array(keys),
+        "numpy U": lambda: np.array(text),
+        "polars String": lambda: pl.Series(text, dtype=pl.String),
+        "polars Binary": lambda: pl.Series(keys, dtype=pl.Binary),
+    }[form]()
+
+
+@pytest.mark.parametrize("form", KEY_BATCH_FORMS)
+def test_every_batch_form_answers_members_with_nul_non_ascii_and_the_longest_key(tricky, form):
+    keys, batch = batch_in_form(form, tricky_members())
+    assert keys and tricky.contains_many(batch).all(), form
+    assert all(tricky.contains(key) for key in keys)
+    assert all(tricky.contains(key.decode()) for key in keys)
+
+
+@pytest.mark.parametrize("keys", [[b"tok\x00", b"abcd"], [b"x\x00\x00", b"abc"], [b"ab", b"abc"], ["tok\x00", "abcd"]])
+def test_a_fixed_width_array_that_may_have_lost_nul_bytes_is_refused(tricky, keys):
+    """numpy reads b"tok\x00" of an S4 array as b"tok": answering it could say "no" to a member."""
+    with pytest.raises(TypeError, match="drops trailing NULs.*dtype=object"):
+        tricky.contains_many(np.array(keys))
