@@ -64,6 +64,9 @@ class CorpusSettings:
     # tau: non-members looked up at least this many times in the window are heavy, answered exactly
     # rather than sampled (tamis.corpus.heavy_cutoff); 0 lets the build choose (44: see there)
     heavy_count: int = field(default=0, metadata={"range": (0, 1 << 53)})
+    # when non_members is a folder of lookup sample files written by served filters
+    # (tamis.traffic), the files whose period ended at most this many days before the build
+    sample_days: float = field(default=7.0, metadata={"range": (0.0, 3650.0)})
 
     def __post_init__(self) -> None:
         if not self.key_column:

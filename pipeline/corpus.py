@@ -46,6 +46,8 @@ from tamis.config import DEFAULT_COUNT_COLUMN, CorpusSettings
 from tamis.errors import BadInput
 from tamis.keylines import KeyLinesError, split_key_lines
 from tamis.keylines import line_of_offset as _line_of_offset
+from tamis.provenance import build_time
+from tamis.traffic import is_sample_folder, read_sample_folder, sample_files
 
 TABLE_SUFFIXES = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".ndjson": "ndjson", ".jsonl": "ndjson"}
 
@@ -263,10 +265,10 @@ def check_sources(members_path: Path, non_members_path: Path) -> MemoryEstimate:
 
     Cheap (file sizes and a 1 MiB sample), so a caller may run it before starting anything heavy.
     """
-    paths = [members_path, non_members_path]
+    paths = [members_path, *([] if is_sample_folder(non_members_path) else [non_members_path])]
     for path in paths:
         require_readable(path)
-    estimate = estimate_build_memory(paths)
+    estimate = estimate_build_memory(paths + sample_files(non_members_path) if len(paths) == 1 else paths)
     available = available_memory()
     if estimate.needed_bytes > available:
         raise BadInput(
@@ -615,12 +617,49 @@ def sample_keys(keys: KeySet, size: int, seed: int) -> KeySet:
     return KeySet([keys.keys[i] for i in pick], keys.counts[pick])
 
 
+def read_lookup_sample(folder: Path, settings: CorpusSettings, members: set[bytes]) -> tuple[RawSource, dict]:
+    """The lookups a folder of sample files holds (tamis.traffic), summed over files and replicas,
+    as a source of non-members with counts, and what it held for the report. Looked-up members are
+    the service's lookups of members, not label errors: they are removed and counted. Keys no
+    build could hold (over max_key_bytes, or not UTF-8 under key_encoding = "utf-8") are never
+    members, so they are dropped too, and counted."""
+    sample = read_sample_folder(folder, settings.sample_days * 86_400, build_time().timestamp())
+    if not sample.files:
+        raise BadInput(f"{folder}: none of its {sample.skipped_old} lookup sample files ended within corpus.sample_days = "
+                       f"{settings.sample_days:g} days of the build; give a folder the service writes into now, or raise it")
+    lengths = np.fromiter(map(len, sample.keys), dtype=np.int64, count=len(sample.keys))
+    usable = lengths <= settings.max_key_bytes
+    if settings.key_encoding == "utf-8":
+        usable &= np.fromiter((_is_utf8(k) for k in sample.keys), dtype=bool, count=len(sample.keys))
+    member = np.fromiter((k in members for k in sample.keys), dtype=bool, count=len(sample.keys))
+    keep = usable & ~member
+    keys = [k for k, kept in zip(sample.keys, keep) if kept]
+    report = {
+        **sample.as_report(),
+        "member_keys": int(member.sum()), "member_lookups": int(sample.counts[member].sum()),
+        "unusable_keys": int((~usable).sum()), "unusable_lookups": int(sample.counts[~usable & ~member].sum()),
+    }
+    return RawSource(keys, sample.counts[keep], len(keys)), report
+
+
+def _is_utf8(key: bytes) -> bool:
+    try:
+        key.decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    return True
+
+
 def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSettings) -> Corpus:
     check_sources(members_path, non_members_path)
     members_raw = read_source(members_path, settings, want_counts=False)
-    non_raw = read_source(non_members_path, settings, want_counts=True)
     if members_raw.rows == 0:
         raise BadInput(f"{members_path}: no members; a filter needs at least one key to hold")
+    sample = None
+    if is_sample_folder(non_members_path):
+        non_raw, sample = read_lookup_sample(non_members_path, settings, set(members_raw.keys))
+    else:
+        non_raw = read_source(non_members_path, settings, want_counts=True)
     if non_raw.rows == 0:
         raise BadInput(f"{non_members_path}: no non-members; the false-positive rate cannot be measured without them")
 
@@ -674,5 +713,6 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
         "non_member_rows": non_raw.rows,
         "non_member_duplicates": non_raw.rows - len(non_keys) - conflicts,
         "conflicts": conflicts,
+        **({"sample": sample} if sample else {}),
     }
     return Corpus(members=members, tau=tau, has_counts=has_counts, stats=stats, **parts)

@@ -14,9 +14,13 @@ from pathlib import Path
 
 import xxhash
 
+from typing import TYPE_CHECKING
+
 from tamis.version import tool_version
 from tamis.config import BuildConfig
-from tamis.corpus import Corpus
+
+if TYPE_CHECKING:  # the corpus stage reads the build time from here
+    from tamis.corpus import Corpus
 
 
 def build_time() -> dt.datetime:
@@ -38,14 +42,15 @@ def corpus_digest(corpus: Corpus) -> str:
 
 def config_digest(config: BuildConfig) -> str:
     """xxh3-128 of the settings that shape the artifact. File paths and the column names they are
-    read with are left out, so moving or renaming a corpus or a store does not change the
+    read with (and the age of lookup sample files read) are left out, so moving or renaming a corpus or a store does not change the
     artifact's bytes, and so is [compute]: the chunk size and the machines a build runs on never
     change its result. So is gate.when_model_does_not_pay: it picks which of two artifacts ships
     (the learned one or the plain filter), and the other settings fix the bytes of each."""
     settings = dataclasses.asdict(config)
     settings.pop("compute")
     settings["gate"].pop("when_model_does_not_pay")
-    reading = (("corpus", "members"), ("corpus", "non_members"), ("corpus", "key_column"), ("corpus", "count_column"))
+    reading = (("corpus", "members"), ("corpus", "non_members"), ("corpus", "key_column"), ("corpus", "count_column"),
+               ("corpus", "sample_days"))  # which sample files are read: the corpus digest holds what they gave
     for section, key in (*reading, ("store", "path")):
         settings[section].pop(key)
     text = json.dumps(settings, sort_keys=True, default=lambda v: str(v) if isinstance(v, Path) else list(v))
