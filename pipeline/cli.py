@@ -161,6 +161,30 @@ def cleaning_text(corpus: dict) -> list[str]:
             f"keys on both sides kept as members: {corpus['conflicts']:,}"]
 
 
+def observed_lines(served: list[dict]) -> list[str]:
+    """Per version served: certified at build time beside observed in service."""
+    def percent(value):
+        return "n/a" if value is None else f"{value:.4%}"
+
+    return [
+        f"  version {row['version']}: certified {percent(row['fpr'])} (upper {percent(row['fpr_upper'])}), observed in service "
+        f"{percent(row['rate'])} ({percent(row['rate_low'])} to {percent(row['rate_high'])}) over {row['lookups']:,} lookups"
+        for row in served
+    ]
+
+
+def sample_text(sample: dict | None) -> list[str]:
+    """The lookup sample the build read from served filters' files, and what the service observed."""
+    if not sample:
+        return []
+    return [
+        f"  lookup sample: {sample['files']:,} files from {sample['replicas']:,} replicas, {sample['period_from']} to "
+        f"{sample['period_to']}, rate {', '.join(f'{r:.6g}' for r in sample['sample_rates'])}; "
+        f"{sample['member_lookups']:,} lookups of members left out",
+        *observed_lines(sample["served"]),
+    ]
+
+
 def summary_text(report: dict, folder: Path) -> str:
     from tamis.report_page import size_parts_text
 
@@ -171,6 +195,7 @@ def summary_text(report: dict, folder: Path) -> str:
         f"  members {report['corpus']['members']:,}, non-members {report['corpus']['non_members']:,}, "
         f"lookups {report['corpus']['lookups']:,}",
         *cleaning_text(report["corpus"]),
+        *sample_text(report["corpus"].get("sample")),
         f"  size {size['total_bytes']:,} bytes ({size['bits_per_member']:.2f} bits/member; model / filters / header and "
         f"layout {size_parts_text(size)})",
         f"  plain Bloom filter's bits at the target (no header, no margin for the measurement) "
@@ -320,6 +345,28 @@ def service_now_text(artifact: Path) -> str:
     return f"in service now: version {current} of store {store} ({this})\n"
 
 
+# `tamis show` sums the sample files of the last day for the rate observed in service now.
+OBSERVED_NOW_SECONDS = 86_400
+
+
+def observed_now_text(report_path: Path) -> str:
+    """When the build read a folder of lookup samples written by served filters: the rate each
+    version was observed at in the files of the last day, beside what its build certified."""
+    from tamis import traffic
+
+    try:
+        folder = Path(json.loads(report_path.read_text(encoding="utf-8"))["paths"]["non_members"])
+        if not traffic.is_sample_folder(folder):
+            return ""
+        sample = traffic.read_sample_folder(folder, OBSERVED_NOW_SECONDS, time.time())
+    except (OSError, ValueError, KeyError, TypeError, BadInput) as error:
+        return f"observed in service: unknown ({error})\n" if report_path.is_file() else ""
+    if not sample.served:
+        return f"observed in service: no sample file of the last day in {folder}\n"
+    return "\n".join([f"observed in service (sample files of the last day in {folder}):",
+                      *observed_lines(sample.served)]) + "\n"
+
+
 def show_text(path: Path, info: dict) -> str:
     """What `tamis show` prints: the header in words, the regions as a table, the report's summary."""
     provenance = info.get("provenance", {})
@@ -344,7 +391,8 @@ def show_text(path: Path, info: dict) -> str:
             f"  measured on {measured_sample_text(measured)}: FPR {measured['fpr']:.4%} "
             f"(upper bound {measured['fpr_upper']:.4%} at {measured['confidence']:.0%})"
         )
-    text = "\n".join(lines) + "\n" + report_text(path.with_name(publish.REPORT_NAME)) + service_now_text(path)
+    report_path = path.with_name(publish.REPORT_NAME)
+    text = "\n".join(lines) + "\n" + report_text(report_path) + service_now_text(path) + observed_now_text(report_path)
     from tamis.report_page import REPORT_PAGE_NAME
 
     page = path.with_name(REPORT_PAGE_NAME)

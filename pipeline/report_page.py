@@ -301,6 +301,41 @@ def corpus_cleaning_rows(corpus: dict) -> list[tuple[str, object]]:
     ]
 
 
+def sample_rows(sample: dict) -> list[tuple[str, object]]:
+    """What the lookup sample written by served filters held (tamis.traffic)."""
+    return [
+        ("files / replicas", f"{sample['files']:,} / {sample['replicas']:,}"
+                             + (f" ({sample['skipped_old_files']:,} older files left out)" if sample["skipped_old_files"] else "")),
+        ("periods", f"{sample['period_from']} to {sample['period_to']}"),
+        ("sample rate (each lookup kept with)", ", ".join(f"{rate:.6g}" for rate in sample["sample_rates"])),
+        ("distinct keys / sampled lookups", f"{sample['keys']:,} / {sample['lookups']:,}"),
+        ("lookups of members left out (keys / lookups)", f"{sample['member_keys']:,} / {sample['member_lookups']:,}"),
+        ("keys no build can hold, left out (keys / lookups)", f"{sample['unusable_keys']:,} / {sample['unusable_lookups']:,}"),
+    ]
+
+
+def observed_rows(served: list[dict]) -> list[list[object]]:
+    """Per version served while the sample was written: the rate its build certified beside the
+    rate the service observed from its confirmations of "maybe"."""
+    return [
+        [row["version"] if row["version"] is not None else "?", _percent(row["fpr"]), _percent(row["fpr_upper"]),
+         f"{row['lookups']:,}", _percent(row["rate"]), f"{_percent(row['rate_low'])} to {_percent(row['rate_high'])}",
+         f"{row['unconfirmed']:,}"]
+        for row in served
+    ]
+
+
+def sample_html(sample: dict | None) -> list[str]:
+    if not sample:
+        return []
+    return [
+        "<h2>Lookup sample from the service</h2>",
+        _pairs(sample_rows(sample)),
+        _table(["version", "certified rate", "certified upper bound", "lookups answered", "observed rate",
+                "observed 95% interval", "maybes not confirmed"], observed_rows(sample["served"])),
+    ]
+
+
 def strata_rows(strata: dict) -> list[tuple[str, object]]:
     """The two strata of the bound: heavy keys answered exactly, the tail sampled."""
     aim_note = " (below half the target: the held-out tail is too small to aim closer)" if strata["aim_below_half_target"] else ""
@@ -480,6 +515,7 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         "<p>The lower bound is the fewest bytes any filter without a model can take for these members at the "
         "target, n log2(1/F) bits; a plain Bloom filter needs about 1.44 times that. The learned artifact beats "
         "it only as far as its model tells non-members from members.</p>",
+        *sample_html(report["corpus"].get("sample")),
         "<h2>Drift of the version in service</h2>",
         _pairs(drift_rows(drift, report)),
         *_figure_html(figures, "drift of the version in service"),
