@@ -451,6 +451,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
     # sources are checked first thing in the corpus stage (load_corpus)
 
     with stages.stage("corpus"):
+        newest_at_start = folding.newest_version(store)
         pending = folding.read_pending(store)
         corpus = read_corpus(quote(config), quote(pending.keys))
         # rule min_heldout: a corpus that cannot show the target is met stops here, before training
@@ -513,7 +514,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
                 baseline=drift.baseline(),
                 comparison=comparison,
             )
-            older = None if replace_newer else folding.newer_inputs_reason(store, inputs)
+            older = None if replace_newer else folding.newer_inputs_reason(store, inputs, newest_at_start)
             passed = not verify.refusal_reasons(checks) and older is None
             next_version = publish.next_version(store)
             summary = report.build_report(

@@ -629,7 +629,10 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
         raise BadInput(f"{non_members_path}: no non-members; the false-positive rate cannot be measured without them")
 
     exported = list(dict.fromkeys(members_raw.keys))
-    members = list(dict.fromkeys([*exported, *added]))
+    members = exported
+    if added:
+        known = set(exported)
+        members = exported + [key for key in dict.fromkeys(added) if key not in known]
     has_counts = non_raw.counts is not None
     raw_counts = non_raw.counts if has_counts else np.ones(non_raw.rows, dtype=np.int64)
     non_keys, non_counts = merge_duplicates(non_raw.keys, raw_counts)

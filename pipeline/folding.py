@@ -13,8 +13,10 @@ build may replace in its store.
   retires nothing.
 - `unchanged_version`: the version in service was built from identical inputs (corpus and
   additions, config, tool): the build publishes nothing and says so.
-- `newer_inputs_reason`: the version in service was built from a members export modified later
-  than this build's: the build is refused unless told to replace it.
+- `newer_inputs_reason`: a version published while this build ran (a racing build) was built from
+  a members export modified later than this build's: the build is refused unless told to replace
+  it. A build started after a version was published replaces it whatever its export's time: that
+  is a deliberate rebuild, judged by the gate's member-drop rule.
 """
 
 from __future__ import annotations
@@ -26,7 +28,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from tamis import additions, publish
-from tamis.artifact import fsync_directory, load_artifact, write_atomically
+from tamis.artifact import ArtifactError, fsync_directory, load_artifact, write_atomically
 from tamis.errors import BadInput
 
 # What makes two builds' inputs identical: the provenance fields that fix the artifact's content.
@@ -68,8 +70,12 @@ def report_fields(pending: Pending, added_not_in_export: int) -> dict:
 
 
 def folded_through_of(folder: Path) -> int:
-    """How far the build of a version folder read the store's batches (0 before additions)."""
-    return additions.folded_through(load_artifact(folder / publish.ARTIFACT_NAME).header)
+    """How far the build of a version folder read the store's batches (0 before additions, and for
+    an artifact that cannot be read: nothing is retired on its account)."""
+    try:
+        return additions.folded_through(load_artifact(folder / publish.ARTIFACT_NAME).header)
+    except ArtifactError:
+        return 0
 
 
 def retire(store: Path) -> int:
@@ -105,13 +111,23 @@ def _report_in_service(store: Path) -> tuple[int, dict] | None:
 
 
 def unchanged_version(store: Path, provenance: dict) -> int | None:
-    """The version in service when it was built from the same inputs as `provenance` describes."""
-    found = _report_in_service(store)
-    if found is None:
+    """The version in service when its artifact (which must open) was built from the same inputs
+    as `provenance` describes; what crashed builds left in the store is cleared then, as a publish
+    would have."""
+    if not store.is_dir():
         return None
-    version, report = found
-    theirs = report.get("provenance", {})
-    return version if all(theirs.get(name) == provenance.get(name) for name in IDENTITY_FIELDS) else None
+    with publish.store_lock(store):
+        version = publish.current_version(store)
+        if version is None:
+            return None
+        try:
+            theirs = load_artifact(store / str(version) / publish.ARTIFACT_NAME).header.get("provenance")
+        except ArtifactError:
+            return None
+        if not isinstance(theirs, dict) or any(theirs.get(name) != provenance.get(name) for name in IDENTITY_FIELDS):
+            return None
+        publish.clear_crash_leftovers(store)
+        return version
 
 
 def members_modified_ns(path: Path) -> int:
@@ -130,11 +146,17 @@ def inputs_fields(members: Path) -> dict:
     return {"members_modified_ns": ns, "members_modified_at": at.replace("+00:00", "Z")}
 
 
-def newer_inputs_reason(store: Path, inputs: dict) -> str | None:
-    """Why this build must not replace the version in service (built from a later members export),
-    or None. Call with the store lock held."""
+def newest_version(store: Path) -> int:
+    """The newest version published in the store (0 for none): a build notes it as it starts."""
+    return max(publish.published_versions(store), default=0)
+
+
+def newer_inputs_reason(store: Path, inputs: dict, newest_at_start: int) -> str | None:
+    """Why this build must not replace the version in service: published while this build ran
+    (numbered above `newest_at_start`) and built from a later members export; else None. Call with
+    the store lock held."""
     found = _report_in_service(store)
-    if found is None:
+    if found is None or found[0] <= newest_at_start:
         return None
     version, report = found
     theirs = report.get("inputs", {})

@@ -93,13 +93,17 @@ def set_current(store: Path, version: int) -> None:
     """Put `version` in service: IN_SERVICE names it, by one atomic rename, and a pointer of the
     store's old name is removed. Call with the store lock held: temporary files of the pointer that
     a crashed writer left are removed first (every writer of the pointer holds the lock)."""
-    for name in (POINTER_NAME, LEGACY_POINTER_NAME):
-        for stale in store.glob(f".{name}.*.tmp"):
-            stale.unlink(missing_ok=True)
+    _remove_pointer_temporaries(store)
     write_atomically(store / POINTER_NAME, [f"{version}\n".encode()])
     if (store / LEGACY_POINTER_NAME).exists():
         (store / LEGACY_POINTER_NAME).unlink()
         fsync_directory(store)
+
+
+def _remove_pointer_temporaries(store: Path) -> None:
+    for name in (POINTER_NAME, LEGACY_POINTER_NAME):
+        for stale in store.glob(f".{name}.*.tmp"):
+            stale.unlink(missing_ok=True)
 
 
 def migrate_pointer(store: Path) -> None:
@@ -235,6 +239,18 @@ def _clear_leftovers(store: Path) -> None:
     """What crashed publishes left: half-removed old versions. Call with the store lock held."""
     for leftover in store.glob(f"{REMOVING_PREFIX}*"):
         _remove_tree(leftover)
+
+
+def clear_crash_leftovers(store: Path) -> None:
+    """Everything crashed builds left (half-removed versions, staging folders of dead builds,
+    temporary pointers, temporary reports in published versions), for a build that publishes
+    nothing. Call with the store lock held: a published version's files are rewritten only under it."""
+    _clear_leftovers(store)
+    remove_stale_staging(store)
+    _remove_pointer_temporaries(store)
+    for version in published_versions(store):
+        for stale in (store / str(version)).glob(".*.tmp"):
+            stale.unlink(missing_ok=True)
 
 
 def publish_staging(store: Path, staging: Path, keep: int) -> int:
