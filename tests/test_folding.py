@@ -82,6 +82,7 @@ def story(tmp_path_factory) -> dict:
             outcomes["refused"] = build(small_config(shrunk, lookups, store))
             outcomes["after_refused"] = snapshot(store / "additions")
             outcomes["v3"] = build(small_config(members, lookups, store))
+            time.sleep(2 * REFRESH_SECONDS)  # long enough in service for the service to swap to it
             outcomes["again"] = build(small_config(members, lookups, store))
             with pytest.raises(StoreError) as refused_rollback:
                 publish.rollback(store, to=1)
