@@ -194,10 +194,10 @@ def require_store(store: Path) -> None:
 def checked_keys(keys: Iterable[str | bytes], max_key_bytes: int = DEFAULT_MAX_KEY_BYTES, where: str = "key") -> list[bytes]:
     """The keys as bytes, duplicates dropped; BadInput for an empty key, one over the length limit,
     or no key at all."""
-    unique = list(dict.fromkeys(map(key_bytes, keys)))
-    if not unique:
+    given = list(map(key_bytes, keys))
+    if not given:
         raise BadInput("no keys to add; give keys as arguments, one a line on standard input, or with --file")
-    for number, key in enumerate(unique, start=1):
+    for number, key in enumerate(given, start=1):
         if not key:
             raise BadInput(f"{where} {number} is empty; a member needs at least one byte (remove the empty line)")
         if len(key) > max_key_bytes:
@@ -205,11 +205,13 @@ def checked_keys(keys: Iterable[str | bytes], max_key_bytes: int = DEFAULT_MAX_K
                 f"{where} {number} is {len(key)} bytes, over the corpus limit of {max_key_bytes} (corpus.max_key_bytes); "
                 f"shorten it, or pass the store's limit with --max-key-bytes"
             )
-    return unique
+    return list(dict.fromkeys(given))
 
 
 @dataclass(frozen=True)
 class Batch:
+    """A batch written: its number, its file and how many distinct keys it holds."""
+
     number: int
     path: Path
     keys: int

@@ -50,7 +50,7 @@ class Pending:
 def read_pending(store: Path) -> Pending:
     """Every batch of the store now, read whole under the additions lock; BadInput for a batch
     that cannot be trusted (a build never drops one silently)."""
-    if not store.is_dir():
+    if not additions.folder_of(store).is_dir():  # nothing was ever added: the store stays untouched
         return Pending(0, 0, [])
     with additions.additions_lock(store):
         found = additions.listed(store)

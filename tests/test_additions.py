@@ -93,6 +93,7 @@ def test_adds_are_numbered_in_order_whole_and_never_reuse_a_retired_number(store
     (["ok", ""], "key 2 is empty"),
     (["ok", "x" * 4097], "key 2 is 4097 bytes, over the corpus limit of 4096"),
     ([], "no keys to add"),
+    (["ok", "ok", ""], "key 3 is empty"),  # counted as given, before duplicates are dropped
 ])
 def test_bad_keys_are_refused_and_nothing_is_recorded(store, keys, message):
     before = snapshot(store)

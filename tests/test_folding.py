@@ -203,3 +203,28 @@ def test_added_keys_are_members_never_non_members_and_no_labelling_conflict(tmp_
     assert corpus.stats["added_not_in_export"] == 2
     assert all(looked_up not in part.keys for part in corpus.non_member_parts)
     assert load_corpus(members, lookups, settings).stats["added_not_in_export"] == 0
+
+
+def test_the_summary_counts_the_keys_folded_in_and_warns_about_those_the_export_lacks(story):
+    from tamis.cli import summary_text
+
+    text = summary_text(story["v2"].report, story["store"] / "2")
+    assert "added members folded in: 3 from 1 batches (through batch 1)" in text
+    assert "WARNING 2 of them are not in today's export: they stay members" in text
+
+
+def test_a_version_published_during_a_build_from_a_later_export_is_not_replaced(tmp_path):
+    store = tmp_path / "store"
+    for version, ns in ((1, 5_000), (2, 9_000)):
+        (store / str(version)).mkdir(parents=True)
+        (store / str(version) / publish.ARTIFACT_NAME).write_bytes(b"x")
+        inputs = {"members_modified_ns": ns, "members_modified_at": f"t{ns}"}
+        (store / str(version) / publish.REPORT_NAME).write_text(json.dumps({"inputs": inputs}))
+    (store / publish.POINTER_NAME).write_text("2\n")
+    ours = {"members_modified_ns": 7_000, "members_modified_at": "t7000"}
+    reason = folding.newer_inputs_reason(store, ours, newest_at_start=1)  # version 2 came during the build
+    assert reason.startswith("older_inputs: version 2 in service was built from a members export modified at t9000")
+    assert "--replace-newer" in reason
+    assert folding.newer_inputs_reason(store, ours, newest_at_start=2) is None  # there before the build: a rebuild
+    later = {"members_modified_ns": 9_500, "members_modified_at": "t9500"}
+    assert folding.newer_inputs_reason(store, later, newest_at_start=1) is None
