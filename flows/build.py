@@ -21,6 +21,7 @@ on the chunk size or on where the chunks ran.
 from __future__ import annotations
 
 import importlib.util
+import json
 import os
 import time
 from collections.abc import Callable, Iterator, Sequence
@@ -35,8 +36,9 @@ from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
+from tamis import additions
 from tamis import corpus as corpus_stage
-from tamis import publish, report, report_page, verify
+from tamis import folding, publish, report, report_page, verify
 from tamis.booster import compile_trees
 from tamis.config import BuildConfig, require_paths
 from tamis.drift import Drift, measure_drift
@@ -90,6 +92,8 @@ class BuildOutcome:
     version: int | None
     folder: Path
     report: dict
+    # the version in service was built from the same inputs: nothing was built or published
+    unchanged: bool = False
 
     @property
     def page(self) -> Path:
@@ -115,8 +119,8 @@ def _stage(name: str, **options):
     retry_delay_seconds=list(CORPUS_RETRY_DELAYS),
     retry_condition_fn=retry_on_transient,
 )
-def read_corpus(config: BuildConfig) -> corpus_stage.Corpus:
-    return corpus_stage.load_corpus(config.corpus.members, config.corpus.non_members, config.corpus)
+def read_corpus(config: BuildConfig, added: Sequence[bytes] = ()) -> corpus_stage.Corpus:
+    return corpus_stage.load_corpus(config.corpus.members, config.corpus.non_members, config.corpus, added)
 
 
 class Chunk:
@@ -432,12 +436,15 @@ LOCAL_TASK_RUNNER = ThreadPoolTaskRunner(max_workers=os.cpu_count() or 1)
 
 
 @flow(name="tamis-build", log_prints=False, validate_parameters=False, task_runner=LOCAL_TASK_RUNNER)
-def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOutcome:
+def build_flow(config: BuildConfig, progress: Progress | None = None, replace_newer: bool = False) -> BuildOutcome:
     """Build, verify and (when the gate passes) publish one artifact into the config's store.
 
     `progress` hears a StageEvent when each stage starts, advances and ends. Raises BadInput for
     input that cannot be used (among it a held-out part too small for the target, found before any
-    training) and BuildFailed when a stage fails otherwise.
+    training) and BuildFailed when a stage fails otherwise. The store's pending additions are
+    folded in (`tamis.folding`); a version in service built from the same inputs ends the build
+    at once (`unchanged`), and one built from a later members export is not replaced unless
+    `replace_newer`.
     """
     started = time.perf_counter()
     stages = _Stages(progress or no_progress)
@@ -447,11 +454,18 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
     # sources are checked first thing in the corpus stage (load_corpus)
 
     with stages.stage("corpus"):
-        corpus = read_corpus(quote(config))
+        newest_at_start = folding.newest_version(store)
+        pending = folding.read_pending(store)
+        corpus = read_corpus(quote(config), quote(pending.keys))
         # rule min_heldout: a corpus that cannot show the target is met stops here, before training
         strata = verify.strata_of(corpus)
         verify.require_heldout(strata, config.target.fpr, config.gate, config.corpus.heldout_share)
-    provenance = build_provenance(config, corpus)
+    provenance = {**build_provenance(config, corpus), "additions_through": pending.through}
+    unchanged = folding.unchanged_version(store, provenance)
+    if unchanged is not None:
+        folder = store / str(unchanged)
+        return BuildOutcome(False, unchanged, folder, json.loads((folder / publish.REPORT_NAME).read_text()), unchanged=True)
+    inputs = folding.inputs_fields(config.corpus.members)
     aim = verify.aim_fpr(config.target.fpr, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas,
                          config.filters.variants)
     spec = default_feature_spec()
@@ -488,6 +502,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
             checked = verify_package(stages.chunks("verify"), artifact, corpus, config)
         # the measured figures go into the header; sections are unchanged, so what was verified is what ships
         write_package(*package_args, {**checked.heldout.as_report(), "target_fpr": config.target.fpr})
+        additions.write_members(staging, corpus.members)  # what a rollback to this version reads
 
         with publish.store_lock(store):
             # under the lock: the version measured is the one a publish would replace
@@ -502,7 +517,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 baseline=drift.baseline(),
                 comparison=comparison,
             )
-            passed = not verify.refusal_reasons(checks)
+            older = None if replace_newer else folding.newer_inputs_reason(store, inputs, newest_at_start)
+            passed = not verify.refusal_reasons(checks) and older is None
             next_version = publish.next_version(store)
             summary = report.build_report(
                 config=config,
@@ -522,11 +538,16 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 version=next_version if passed else None,
                 timings=stages.timings,
             )
+            summary["additions"] = folding.report_fields(pending, corpus.stats["added_not_in_export"])
+            summary["inputs"] = inputs
+            if older is not None:
+                summary["gate"] = {**summary["gate"], "passed": False, "reasons": [*summary["gate"]["reasons"], older]}
             figures = stages.run("report", write_reports, staging, summary, scores)
             with stages.stage("publish") as ending:
                 if passed:
                     version = publish.publish_staging(store, staging, config.store.keep)
                     folder = store / str(version)
+                    summary["additions"]["retired_through"] = folding.retire(store)
                 else:
                     version = None
                     folder = publish.refuse_staging(store, staging, provenance["build_id"])

@@ -112,6 +112,7 @@ def outcome_summary(outcome: BuildOutcome) -> dict:
     """The small JSON-able result of one nightly run."""
     return {
         "published": outcome.published,
+        "unchanged": outcome.unchanged,
         "version": outcome.version,
         "folder": str(outcome.folder),
         "reasons": list(outcome.report["gate"]["reasons"]),
@@ -119,8 +120,9 @@ def outcome_summary(outcome: BuildOutcome) -> dict:
 
 
 def final_state(summary: dict) -> dict | State:
-    """A published build completes with its summary; a refused one fails with the gate's reasons."""
-    if summary["published"]:
+    """A published build (or one whose inputs the version in service was already built from)
+    completes with its summary; a refused one fails with the gate's reasons."""
+    if summary["published"] or summary["unchanged"]:
         return summary
     return Failed(message="refused by the gate: " + "; ".join(summary["reasons"]), data=summary)
 

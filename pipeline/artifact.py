@@ -1,6 +1,6 @@
 """The binary artifact container: a bounded msgpack header and aligned, checksummed numeric sections.
 
-Layout of format 2.0, the same as 1.0 (all integers little-endian):
+Layout of format 2.1, the same as 1.0 (all integers little-endian):
 
     offset  size  field
     ------  ----  -----------------------------------------------------------------------------

@@ -18,6 +18,7 @@ from importlib import resources
 from pathlib import Path
 
 from tamis import publish
+from tamis.keylines import DEFAULT_MAX_KEY_BYTES
 from tamis.version import tool_version
 from tamis.errors import BadInput
 
@@ -67,7 +68,7 @@ def _demo_config_path() -> Path:
     return Path(str(resources.files("tamis.configs") / "demo.toml"))
 
 
-def _run_build(config) -> int:
+def _run_build(config, replace_newer: bool = False) -> int:
     _prepare_prefect(PREFECT_BUILD_DEFAULTS)
     from tamis.flows.build import BuildFailed, check_inputs, flow_for
     from tamis.flows.server_guard import start_temporary_server
@@ -79,10 +80,14 @@ def _run_build(config) -> int:
     start_temporary_server()  # under a guard: it ends with this process, even one killed with SIGKILL
     try:
         with progress_display(sys.stderr) as progress:
-            outcome = build(config, progress=progress)
+            outcome = build(config, progress=progress, replace_newer=replace_newer)
     except BuildFailed as failure:
         print(failure_text(failure, config.store.path), file=sys.stderr, end="")
         return EXIT_FAILED
+    if outcome.unchanged:
+        print(f"unchanged: version {outcome.version} in service was built from the same inputs (corpus, additions, "
+              f"config, tool version); nothing was built or published: {outcome.folder}")
+        return EXIT_PUBLISHED
     print(summary_text(outcome.report, outcome.folder), end="")
     print(f"report page: {outcome.page}")
     print(f"total {time.perf_counter() - started:.1f} s", file=sys.stderr)
@@ -185,6 +190,16 @@ def sample_text(sample: dict | None) -> list[str]:
     ]
 
 
+def additions_text(folded: dict) -> str:
+    """One line on the added members the build folded in, and those the export lacks."""
+    line = (f"  added members folded in: {folded['keys']:,} from {folded['batches']:,} batches (through batch "
+            f"{folded['folded_through']})")
+    if folded["not_in_export"]:
+        line += (f"; WARNING {folded['not_in_export']:,} of them are not in today's export: they stay members "
+                 f"(check the export, or the additions)")
+    return line
+
+
 def summary_text(report: dict, folder: Path) -> str:
     from tamis.report_page import size_parts_text
 
@@ -211,6 +226,8 @@ def summary_text(report: dict, folder: Path) -> str:
         lines.append(plain_filter_text(report["plain_filter"]))
     if "drift" in report:
         lines.append(drift_text(report["drift"]))
+    if report.get("additions", {}).get("keys"):
+        lines.append(additions_text(report["additions"]))
     lines += [f"  refused: {reason}" for reason in report["gate"]["reasons"]]
     return "\n".join(lines) + "\n"
 
@@ -253,7 +270,7 @@ def cmd_build(args) -> int:
         gate={"max_size_growth": 0.0, "max_member_drop": 0.0} if args.no_change_limits else {},
         compute={"cluster": args.cluster},
     )
-    return _run_build(config)
+    return _run_build(config, replace_newer=args.replace_newer)
 
 
 def _artifact_path(given: str) -> Path:
@@ -268,25 +285,37 @@ def _artifact_path(given: str) -> Path:
 
 
 def _open(given: str):
+    """An artifact file, or a store's version in service with the keys added after it."""
     from tamis.loader import FilterLoadError, open_filter
 
+    path = Path(given)
     try:
-        return open_filter(_artifact_path(given))
+        return open_filter(path if path.is_dir() else _artifact_path(given))
     except FilterLoadError as exc:
         raise BadInput(str(exc)) from None
 
 
-def lookup_keys(arguments: list[str], encoding: str) -> list[bytes]:
-    """The keys `tamis lookup` answers, as bytes and whatever the locale: each argument's bytes as
-    the shell passed them, or else the lines of standard input's bytes (`tamis.keylines`). In
-    "utf-8" mode a key that is not valid UTF-8 is refused, as the build refuses it."""
+def lookup_keys(arguments: list[str], encoding: str, file: str | None = None) -> list[bytes]:
+    """The keys `tamis lookup` answers (and `tamis add` records), as bytes and whatever the locale:
+    each argument's bytes as the shell passed them, then the lines of `file`; or else the lines of
+    standard input's bytes (`tamis.keylines`). In "utf-8" mode a key that is not valid UTF-8 is
+    refused, as the build refuses it."""
     from tamis.keylines import KeyLinesError, split_key_lines
 
-    if not arguments:
+    def lines_of(raw: bytes, where: str) -> list[bytes]:
         try:
-            return split_key_lines(sys.stdin.buffer.read(), encoding, bytes_option="--key-encoding bytes")
+            return split_key_lines(raw, encoding, bytes_option="--key-encoding bytes")
         except KeyLinesError as exc:
-            raise BadInput(f"standard input: {exc}") from None
+            raise BadInput(f"{where}: {exc}") from None
+
+    if file is not None:
+        try:
+            raw = Path(file).read_bytes()
+        except OSError as exc:
+            raise BadInput(f"--file {file}: cannot be read ({exc.strerror}); check the path") from None
+        return lookup_keys(arguments, encoding) + lines_of(raw, file) if arguments else lines_of(raw, file)
+    if not arguments:
+        return lines_of(sys.stdin.buffer.read(), "standard input")
     keys = [os.fsencode(argument) for argument in arguments]  # the exact bytes of argv
     if encoding == "utf-8":
         for number, key in enumerate(keys, start=1):
@@ -306,6 +335,16 @@ def cmd_lookup(args) -> int:
     out = sys.stdout.buffer
     out.writelines(key + (b"\tmaybe\n" if answer else b"\tno\n") for key, answer in zip(keys, answers))
     out.flush()
+    return 0
+
+
+def cmd_add(args) -> int:
+    from tamis.additions import add_keys
+
+    keys = lookup_keys(args.keys, args.key_encoding, args.file)
+    batch = add_keys(Path(args.store), keys, args.max_key_bytes)
+    print(f"added {batch.keys:,} keys as batch {batch.number} of {args.store}: every service of the store answers "
+          f"maybe for them from its next refresh; the next build folds them in")
     return 0
 
 
@@ -434,8 +473,13 @@ def cmd_schedule(args) -> int:
 
 
 def cmd_rollback(args) -> int:
-    version = publish.rollback(Path(args.store), to=args.to)
-    print(f"version {version} is in service")
+    outcome = publish.rollback(Path(args.store), to=args.to, newer_members=args.newer_members)
+    print(f"version {outcome.version} is in service")
+    if outcome.covered:
+        print(f"{outcome.covered:,} members of later versions that it lacks were added as batch {outcome.batch}: "
+              f"served as maybe, folded in by the next build")
+    if outcome.dropped:
+        print(f"{outcome.dropped:,} members of later versions that it lacks now answer no (--newer-members drop)")
     return 0
 
 
@@ -452,7 +496,12 @@ EXAMPLES = {
     ),
     "show": "examples:\n  tamis show store\n  tamis show store/3/artifact.tamis",
     "versions": "example:\n  tamis versions /srv/filters",
-    "rollback": "examples:\n  tamis rollback /srv/filters\n  tamis rollback /srv/filters --to 7",
+    "rollback": "examples:\n  tamis rollback /srv/filters\n  tamis rollback /srv/filters --to 7\n"
+                "  tamis rollback /srv/filters --newer-members cover",
+    "add": (
+        "examples:\n  tamis add /srv/filters bot_4412 frost_wyrm_1984\n  tamis add /srv/filters < banned_today.txt\n"
+        "  tamis add /srv/filters --file banned_today.txt"
+    ),
     "schedule": "example:\n  tamis schedule configs/nightly.example.toml",
 }
 
@@ -497,6 +546,9 @@ def make_parser() -> argparse.ArgumentParser:
     build.add_argument("--cluster", metavar="ADDRESS",
                        help="run the per-chunk stages and training on the Dask cluster of this scheduler, "
                             "e.g. tcp://10.0.0.5:8786 (needs the cluster extra; default: this machine)")
+    build.add_argument("--replace-newer", action="store_true",
+                       help="publish even when the version in service was built from a members export modified "
+                            "later than this build's (refused otherwise: it would put older members back in service)")
     build.set_defaults(run=cmd_build)
 
     lookup = command("lookup", "answer keys: KEY<TAB>maybe or KEY<TAB>no, in input order")
@@ -507,6 +559,16 @@ def make_parser() -> argparse.ArgumentParser:
                              "(every byte but LF is the key's; a line ending in CR is refused); input and output "
                              "are bytes, whatever the locale")
     lookup.set_defaults(run=cmd_lookup)
+
+    add = command("add", "record keys as members of a store now: served as maybe at once, folded in by the next build")
+    add.add_argument("store", help="the store folder a build publishes into")
+    add.add_argument("keys", nargs="*", help="keys to add (default: one a line from stdin, unless --file is given)")
+    add.add_argument("--file", metavar="F", help="add the keys of this file, one a line (same rules as stdin)")
+    add.add_argument("--key-encoding", choices=("utf-8", "bytes"), default="utf-8",
+                     help="keys are UTF-8 text (default) or raw bytes, read as `tamis lookup` reads them")
+    add.add_argument("--max-key-bytes", type=int, default=DEFAULT_MAX_KEY_BYTES, metavar="N",
+                     help=f"the longest key accepted: the store's corpus.max_key_bytes (default {DEFAULT_MAX_KEY_BYTES})")
+    add.set_defaults(run=cmd_add)
 
     show = command("show", "header, sizes, regions, measured FPR and provenance of an artifact")
     show.add_argument("artifact", help="an artifact file, or a store folder (its version in service)")
@@ -521,6 +583,10 @@ def make_parser() -> argparse.ArgumentParser:
     rollback.add_argument("store")
     rollback.add_argument("--to", type=int, metavar="VERSION",
                           help="the published version to put in service (see `tamis versions`), e.g. to undo a rollback")
+    rollback.add_argument("--newer-members", choices=("cover", "drop"),
+                          help="members that later versions hold and the chosen one lacks (the rollback refuses "
+                               "while there are any): 'cover' adds them as a batch (served as maybe), 'drop' lets them "
+                               "answer no")
     rollback.set_defaults(run=cmd_rollback)
 
     schedule = command("schedule", "serve the nightly build on the config's cron through Prefect (until Ctrl-C)")

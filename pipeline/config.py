@@ -33,6 +33,7 @@ import numpy as np
 
 from tamis.errors import BadInput
 from tamis.format import MAX_TREE_LEAVES, MAX_TREES
+from tamis.keylines import DEFAULT_MAX_KEY_BYTES
 from tamis.regions import RegionSettings
 
 
@@ -54,7 +55,7 @@ class CorpusSettings:
     count_column: str = DEFAULT_COUNT_COLUMN
     # "utf-8": keys must be valid UTF-8 text; "bytes": keys are taken as raw bytes
     key_encoding: str = field(default="utf-8", metadata={"choices": ("utf-8", "bytes")})
-    max_key_bytes: int = field(default=4096, metadata={"range": (1, 1 << 20)})
+    max_key_bytes: int = field(default=DEFAULT_MAX_KEY_BYTES, metadata={"range": (1, 1 << 20)})
     # a key listed as both member and non-member: "member" keeps it a member (it can never be a
     # false negative) and counts it in the report; "error" refuses the corpus
     conflicts: str = field(default="member", metadata={"choices": ("member", "error")})

@@ -35,6 +35,7 @@ import json
 import math
 import os
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -650,20 +651,27 @@ def _is_utf8(key: bytes) -> bool:
     return True
 
 
-def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSettings) -> Corpus:
+def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSettings, added: Sequence[bytes] = ()) -> Corpus:
+    """The corpus of the two sources; `added` are members recorded since the export (`tamis add`,
+    folded in by the build): members whatever the export says, and never non-members. The stats
+    count how many of them the export lacks (`added_not_in_export`)."""
     check_sources(members_path, non_members_path)
     members_raw = read_source(members_path, settings, want_counts=False)
     if members_raw.rows == 0:
         raise BadInput(f"{members_path}: no members; a filter needs at least one key to hold")
     sample = None
     if is_sample_folder(non_members_path):
-        non_raw, sample = read_lookup_sample(non_members_path, settings, set(members_raw.keys))
+        non_raw, sample = read_lookup_sample(non_members_path, settings, {*members_raw.keys, *added})
     else:
         non_raw = read_source(non_members_path, settings, want_counts=True)
     if non_raw.rows == 0:
         raise BadInput(f"{non_members_path}: no non-members; the false-positive rate cannot be measured without them")
 
-    members = list(dict.fromkeys(members_raw.keys))
+    exported = list(dict.fromkeys(members_raw.keys))
+    members = exported
+    if added:
+        known = set(exported)
+        members = exported + [key for key in dict.fromkeys(added) if key not in known]
     has_counts = non_raw.counts is not None
     raw_counts = non_raw.counts if has_counts else np.ones(non_raw.rows, dtype=np.int64)
     non_keys, non_counts = merge_duplicates(non_raw.keys, raw_counts)
@@ -672,11 +680,14 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
     in_members = np.fromiter((k in member_set for k in non_keys), dtype=bool, count=len(non_keys))
     conflicts = int(in_members.sum())
     if conflicts and settings.conflicts == "error":
-        example = non_keys[int(np.argmax(in_members))]
-        raise BadInput(
-            f"{conflicts} keys are listed as both member and non-member (e.g. {example!r}); fix the labels, "
-            f"or set corpus.conflicts = \"member\" to keep them members"
-        )
+        # an added member looked up since is no labelling error: only the export's own conflicts are
+        exported_set = set(exported) if len(members) > len(exported) else member_set
+        labelled_both = [k for k, m in zip(non_keys, in_members) if m and k in exported_set]
+        if labelled_both:
+            raise BadInput(
+                f"{len(labelled_both)} keys are listed as both member and non-member (e.g. {labelled_both[0]!r}); fix the "
+                f"labels, or set corpus.conflicts = \"member\" to keep them members"
+            )
     if conflicts:
         keep = ~in_members
         non_keys = [k for k, m in zip(non_keys, in_members) if not m]
@@ -709,7 +720,8 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
             )
     stats = {
         "member_rows": members_raw.rows,
-        "member_duplicates": members_raw.rows - len(members),
+        "member_duplicates": members_raw.rows - len(exported),
+        "added_not_in_export": len(members) - len(exported),
         "non_member_rows": non_raw.rows,
         "non_member_duplicates": non_raw.rows - len(non_keys) - conflicts,
         "conflicts": conflicts,

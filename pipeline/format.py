@@ -23,8 +23,10 @@ import numpy as np
 MAGIC = b"\x89TAMIS\r\n"
 # Written as 2.0: a region may hold a binary fuse filter, which a 1.x reader cannot ignore (it would
 # have to answer its keys). Files of every major in READABLE_MAJORS are still read.
+# 2.1 adds the optional provenance field additions_through (how far the build read the store's
+# addition batches, tamis.additions), which a 2.0 reader ignores.
 FORMAT_MAJOR = 2
-FORMAT_MINOR = 0
+FORMAT_MINOR = 1
 READABLE_MAJORS = (1, 2)
 # magic, major, minor, header length, header checksum, 8 reserved bytes (zero), all little-endian.
 PREAMBLE = struct.Struct("<8sHHIQ8x")

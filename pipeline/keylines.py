@@ -16,6 +16,10 @@ from __future__ import annotations
 
 KEY_ENCODINGS = ("utf-8", "bytes")
 
+# The longest key a corpus takes unless corpus.max_key_bytes says otherwise; `tamis add` checks
+# added members against it too.
+DEFAULT_MAX_KEY_BYTES = 4096
+
 # Some editors start UTF-8 text with a byte-order mark; it is not part of the first key.
 UTF8_BOM = b"\xef\xbb\xbf"
 

@@ -23,6 +23,9 @@ asked (`refresh()`) or every `refresh_seconds`:
     with open_filter("/srv/tamis/store", refresh_seconds=60) as bans:
         bans.contains(handle); bans.version; bans.fpr
 
+A served store also answers "maybe" for every key added to it (`tamis add`, `tamis.additions`)
+after the version in service was built; a refresh reads new batches without reopening the artifact.
+
 A "maybe" (True) is only a hint: confirm it against the authoritative set before acting on it.
 """
 
@@ -42,6 +45,7 @@ from typing import Any, Iterable, Literal
 import numpy as np
 
 from tamis import store
+from tamis.additions import NO_PENDING, BatchError, PendingKeys, folded_through
 from tamis.artifact import ArtifactError, check_artifact, load_artifact
 from tamis.bloom import BloomFilter
 from tamis.features import feature_layout
@@ -79,6 +83,10 @@ ON_ERROR_CHOICES = ("raise", "maybe")
 
 class FilterLoadError(ArtifactError):
     """The artifact cannot be used: unreadable, corrupted, of an unknown format, or inconsistent."""
+
+
+class AdditionsLoadError(FilterLoadError):
+    """A batch of the store's additions cannot be trusted, so the keys added are not all known."""
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -367,27 +375,53 @@ def _degraded(path: Path, error: FilterLoadError) -> DegradedFilter:
 
 @dataclass(frozen=True, eq=False)
 class InService:
-    """One version of a store as served: its number (None when none could be opened) and its filter."""
+    """One version of a store as served: its number (None when none could be opened), its filter,
+    the identity of its artifact file (device, inode, size, modification time: a store wiped and
+    rebuilt reuses version numbers, never all four), how far its build read the store's additions
+    and the keys added after that."""
 
     version: int | None
     filter: MembershipFilter | DegradedFilter
+    identity: tuple | None = None
+    through: int = 0
+    pending: PendingKeys = NO_PENDING
+
+
+def _file_identity(path: Path) -> tuple:
+    status = os.stat(path)
+    return (status.st_dev, status.st_ino, status.st_size, status.st_mtime_ns)
+
+
+def _pending_after(folder: Path, pending: PendingKeys, through: int) -> PendingKeys:
+    try:
+        return pending.after(folder, through)
+    except BatchError as error:
+        raise AdditionsLoadError(f"{error}; remove or restore the file (every service answers 'maybe' to all keys "
+                                 f"while it stays, under on_error='maybe')") from error
 
 
 def open_in_service(folder: Path, answer_path: str) -> InService:
-    """The version in service of the store `folder`, read as one (`tamis.store.read_in_service`);
-    FilterLoadError when there is none or it cannot be used."""
+    """The version in service of the store `folder`, read as one (`tamis.store.read_in_service`),
+    with the keys added after its build; FilterLoadError when there is none or it cannot be used."""
     try:
         version, path, data = store.read_in_service(folder)
+        identity = _file_identity(path)
     except (store.StoreError, OSError) as error:
         raise FilterLoadError(f"{folder}: {error}" if isinstance(error, OSError) else str(error)) from error
-    return InService(version, _open_checked(path, answer_path, data))
+    opened = _open_checked(path, answer_path, data)
+    through = folded_through(opened.header)
+    return InService(version, opened, identity, through, _pending_after(folder, NO_PENDING, through))
 
 
 class ServedFilter:
     """The version in service of a store, answering like `MembershipFilter`, kept current.
 
-    `refresh()` swaps to the version now in service when it differs from the one served; with
-    `refresh_seconds`, a background thread calls it at that interval. The version served and its
+    `refresh()` swaps to the version now in service when it differs from the one served (another
+    version number, or another artifact file under the same number: a store wiped and rebuilt),
+    and otherwise reads the batches added since (`tamis.additions`); with `refresh_seconds`, a
+    background thread calls it at that interval. Every key added after the served version was
+    built answers True on every path. A batch that cannot be trusted is an AdditionsLoadError; under
+    on_error="maybe" the filter then answers True for every key until it can read them all again. The version served and its
     filter are one object replaced by one assignment, and every query reads it once, so queries from
     any number of threads run on during a swap and each is answered wholly by one version. A new
     version that cannot be opened is not swapped in: `refresh()` raises FilterLoadError under
@@ -417,21 +451,39 @@ class ServedFilter:
             self._refresher.start()
 
     def refresh(self) -> bool:
-        """Serve the version now in service if it is not the one served; True when it swapped."""
+        """Serve the version now in service if it is not the one served, and the keys added since;
+        True when it swapped versions."""
         with self._swap:
             self._check_open()
             served = self._served
             try:
-                if store.version_in_service(self.store) == served.version and not served.filter.degraded:
+                if self._serves_build_in_service(served):
+                    self._served = dataclasses.replace(served, pending=_pending_after(self.store, served.pending, served.through))
                     return False
                 latest = open_in_service(self.store, self._answer_path)
             except (FilterLoadError, store.StoreError, OSError) as error:
                 if self._on_error == "raise":
+                    if isinstance(error, FilterLoadError):
+                        raise
                     raise FilterLoadError(str(error)) from error
-                LOG.error(f"{self.store}: version {served.version} stays in service here: {error}")
+                if isinstance(error, AdditionsLoadError):
+                    self._served = InService(served.version, _degraded(self.store, error))
+                else:
+                    LOG.error(f"{self.store}: version {served.version} stays in service here: {error}")
                 return False
             self._served = latest
             return True
+
+    def _serves_build_in_service(self, served: InService) -> bool:
+        """True when the store's version in service is the very build served (its number and its
+        artifact file, which a store wiped and rebuilt does not keep)."""
+        version = store.version_in_service(self.store)
+        if version != served.version or served.filter.degraded:
+            return False
+        try:
+            return _file_identity(self.store / str(version) / store.ARTIFACT_NAME) == served.identity
+        except FileNotFoundError:
+            return False
 
     def _refresh_every(self, seconds: float) -> None:
         while not self._closed.wait(seconds):
@@ -456,17 +508,24 @@ class ServedFilter:
         if self._closed.is_set():
             raise ValueError(f"the filter of store {self.store} is closed")
 
-    def _filter(self) -> MembershipFilter | DegradedFilter:
+    def _current(self) -> InService:
         self._check_open()
-        return self._served.filter
+        return self._served
 
-    # Answers, each from the version served when the query began.
+    # Answers, each from the version served (and the keys added after it) when the query began.
 
     def contains(self, key: str | bytes) -> bool:
-        return self._filter().contains(key)
+        served = self._current()
+        if type(key) is not bytes:
+            key = key_bytes(key)
+        return key in served.pending.keys or served.filter.contains(key)  # one set probe more
 
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
-        return self._filter().contains_many(keys)
+        served = self._current()
+        if not served.pending.keys or served.filter.degraded:
+            return served.filter.contains_many(keys)
+        packed = pack_batch(keys)
+        return served.pending.mark(packed, served.filter.answer_packed(packed))
 
     def __contains__(self, key: str | bytes) -> bool:
         return self.contains(key)
@@ -482,8 +541,15 @@ class ServedFilter:
         return self._served.filter.degraded
 
     @property
+    def added(self) -> int:
+        """How many keys added after the served version was built are answered on top of it."""
+        return len(self._served.pending.keys)
+
+    @property
     def info(self) -> dict:
-        return {**self._served.filter.info, "version": self._served.version}
+        served = self._served
+        return {**served.filter.info, "version": served.version, "additions": {"folded_through": served.through,
+                                                                              "pending_keys": len(served.pending.keys)}}
 
     @property
     def fpr(self) -> float | None:

@@ -35,9 +35,11 @@ import re
 import shutil
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 
-from tamis.artifact import fsync_directory, write_atomically
+from tamis import additions
+from tamis.artifact import ArtifactError, fsync_directory, load_artifact, write_atomically
 from tamis.store import ARTIFACT_NAME, LEGACY_POINTER_NAME, POINTER_NAME, StoreError, is_version_name
 from tamis.store import artifact_in_service as current_artifact
 from tamis.store import version_in_service as current_version
@@ -91,13 +93,17 @@ def set_current(store: Path, version: int) -> None:
     """Put `version` in service: IN_SERVICE names it, by one atomic rename, and a pointer of the
     store's old name is removed. Call with the store lock held: temporary files of the pointer that
     a crashed writer left are removed first (every writer of the pointer holds the lock)."""
-    for name in (POINTER_NAME, LEGACY_POINTER_NAME):
-        for stale in store.glob(f".{name}.*.tmp"):
-            stale.unlink(missing_ok=True)
+    _remove_pointer_temporaries(store)
     write_atomically(store / POINTER_NAME, [f"{version}\n".encode()])
     if (store / LEGACY_POINTER_NAME).exists():
         (store / LEGACY_POINTER_NAME).unlink()
         fsync_directory(store)
+
+
+def _remove_pointer_temporaries(store: Path) -> None:
+    for name in (POINTER_NAME, LEGACY_POINTER_NAME):
+        for stale in store.glob(f".{name}.*.tmp"):
+            stale.unlink(missing_ok=True)
 
 
 def migrate_pointer(store: Path) -> None:
@@ -235,6 +241,18 @@ def _clear_leftovers(store: Path) -> None:
         _remove_tree(leftover)
 
 
+def clear_crash_leftovers(store: Path) -> None:
+    """Everything crashed builds left (half-removed versions, staging folders of dead builds,
+    temporary pointers, temporary reports in published versions), for a build that publishes
+    nothing. Call with the store lock held: a published version's files are rewritten only under it."""
+    _clear_leftovers(store)
+    remove_stale_staging(store)
+    _remove_pointer_temporaries(store)
+    for version in published_versions(store):
+        for stale in (store / str(version)).glob(".*.tmp"):
+            stale.unlink(missing_ok=True)
+
+
 def publish_staging(store: Path, staging: Path, keep: int) -> int:
     """Make a verified staging folder the next version and switch IN_SERVICE to it; returns the version.
 
@@ -289,11 +307,42 @@ def require_store(store: Path) -> None:
         raise StoreError(f"store {store} is a file, not a folder; give the path of a store folder")
 
 
-def rollback(store: Path, to: int | None = None) -> int:
+@dataclass(frozen=True)
+class Rollback:
+    """The version a rollback put in service; members of later versions it lacks, covered by the
+    addition batch `batch` or dropped."""
+
+    version: int
+    covered: int = 0
+    dropped: int = 0
+    batch: int | None = None
+
+
+def members_lacked(store: Path, version: int) -> list[bytes]:
+    """Members that the versions published after `version` hold (their member lists) and that
+    neither `version` nor the batches served on top of it (added after its build) hold."""
+    lists = [additions.read_members(store / str(v)) for v in published_versions(store) if v > version]
+    lists = [members for members in lists if members is not None]  # versions built before member lists: unknown
+    if not lists:
+        return []
+    folder = store / str(version)
+    held = set(additions.read_members(folder) or ())
+    through = additions.folded_through(load_artifact(folder / ARTIFACT_NAME).header)
+    held.update(additions.NO_PENDING.after(store, through).keys)
+    lacked = {}
+    for members in lists:
+        lacked.update(dict.fromkeys(key for key in members if key not in held))
+    return list(lacked)
+
+
+def rollback(store: Path, to: int | None = None, newer_members: str | None = None) -> Rollback:
     """Put a published version back in service; returns it.
 
     Without `to`, the newest version older than the one in service; with `to`, that version, older
-    or newer than the one in service (so a rollback can be undone).
+    or newer than the one in service (so a rollback can be undone). Every batch added after the
+    version was built is served on top of it. Members of later versions that it lacks (they came
+    through a later export) refuse the rollback, naming how many, unless `newer_members` is "cover"
+    (they are added as one batch before the switch, so none answers no at any moment) or "drop".
     """
     require_store(store)
     with store_lock(store):
@@ -313,5 +362,19 @@ def rollback(store: Path, to: int | None = None) -> int:
                     f"{store}: version {current} is the oldest published version; there is no older one to roll back to"
                 )
             chosen = older[-1]
+        try:
+            lacked = members_lacked(store, chosen)
+        except (additions.BatchError, ArtifactError) as error:
+            raise StoreError(f"{store}: cannot tell which members version {chosen} lacks: {error}") from None
+        if lacked and newer_members is None:
+            raise StoreError(
+                f"{store}: version {chosen} lacks {len(lacked):,} members that later versions hold (they came through a later "
+                f"export); it would answer no for them. Pass --newer-members cover to add them as a batch (served as maybe), "
+                f"or --newer-members drop to let them answer no"
+            )
+        batch = None
+        if lacked and newer_members == "cover":
+            batch = additions.add_keys(store, lacked, max_key_bytes=max(map(len, lacked))).number
         set_current(store, chosen)
-        return chosen
+        covered = len(lacked) if batch is not None else 0
+        return Rollback(chosen, covered, len(lacked) - covered, batch)

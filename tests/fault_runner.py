@@ -9,7 +9,8 @@ a build costs its own run time, not the 10 s of imports. Builds run the flow's b
 in all, not half (their thread pools contend).
 
 `kills` (PLAN: members, non_members, target, keep, work):
-1. a build publishes version 1 into WORK/base;
+1. a build publishes version 1 into WORK/base, from the members and one more (so the builds below
+   have inputs of their own: a build of the same inputs as the version in service publishes nothing);
 2. a copy of it, WORK/trace, gets a build that records every watched file-system call, and
    another copy, WORK/timed, a build that is timed;
 3. for each kill point, a copy WORK/point-I of the base store gets a build killed with SIGKILL
@@ -28,7 +29,7 @@ shutil.rmtree, os.fsync, and each write() to a file opened for writing there. SI
 no chance to clean up: what it leaves is what the OOM killer would leave.
 
 `race` (PLAN: corpora [[members, non_members], [members, non_members]], store, target, work): a
-build publishes version 1, then two builds start at once on the store, each of its own corpus;
+build publishes version 1 (from the first corpus and one more member), then two builds start at once on the store, each of its own corpus;
 each waits, once its staging folder exists, until the other's exists too, so both are in flight
 together, and logs when its publish call starts and ends.
 
@@ -164,7 +165,7 @@ def build(plan: dict, store: Path, members: str | None = None, non_members: str 
         outcome = run(config, progress=progress)
     if trace:
         trace.write_text(json.dumps({"calls": watch.calls}))
-    return {"published": outcome.published, "version": outcome.version}
+    return {"published": outcome.published, "version": outcome.version, "unchanged": outcome.unchanged}
 
 
 def fork(work, kill_after: float | None = None) -> int:
@@ -237,10 +238,18 @@ def run_point(plan: dict, work: Path, index: int, kill: dict) -> dict:
     return result
 
 
+def with_one_more(members: str, into: Path) -> str:
+    """A members file of every member of `members` and one more: a version 1 that holds every
+    member and that the builds of `members` change."""
+    into.write_text(Path(members).read_text(encoding="utf-8") + "version_one_only_member\n", encoding="utf-8")
+    return str(into)
+
+
 def kills(plan: dict) -> dict:
     work = Path(plan["work"])
     base, trace_store, trace_file = work / "base", work / "trace", work / "trace.json"
-    if fork(lambda: build(plan, base)) != 0:
+    first = with_one_more(plan["members"], work / "base-members.txt")
+    if fork(lambda: build(plan, base, first)) != 0:
         raise SystemExit("the base build failed")
     shutil.copytree(base, trace_store, symlinks=True)
     if fork(lambda: build(plan, trace_store, trace=trace_file)) != 0:
@@ -285,6 +294,7 @@ def racing_build(plan: dict, work: Path, name: str, members: str, non_members: s
 def race(plan: dict) -> dict:
     work, store = Path(plan["work"]), Path(plan["store"])
     (first_members, first_non), _ = plan["corpora"]
+    first_members = with_one_more(first_members, work / "first-members.txt")
     if fork(lambda: build(plan, store, first_members, first_non)) != 0:
         raise SystemExit("the first build failed")
     pids = {}

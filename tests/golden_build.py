@@ -84,7 +84,7 @@ def build_golden(folder: Path) -> Path:
                         TARGET_FPR, REGIONS)
     filters = build_filters(corpus.members, region_of(member_scores, plan.boundaries), plan.filters, HASH_SEED)
     # The tool version is pinned so that a release does not change the golden bytes.
-    provenance = {**build_provenance(config, corpus), "tool_version": "golden"}
+    provenance = {**build_provenance(config, corpus), "tool_version": "golden", "additions_through": 0}
     path = Path(folder) / "golden.tamis"
     package_artifact(path, feature_spec=spec, forest=choice.forest, boundaries=plan.boundaries,
                      region_filters=filters, hash_seed=HASH_SEED, provenance=provenance)

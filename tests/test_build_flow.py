@@ -149,7 +149,8 @@ def test_a_failing_stage_publishes_nothing_and_says_which_stage(published, corpu
 
     monkeypatch.setattr(verify, "verification", broken)
     with pytest.raises(build.BuildFailed) as failed:
-        build.build_flow(small_config(*corpus_files, store))
+        # another target: a build of the inputs of the version in service would publish nothing at once
+        build.build_flow(small_config(*corpus_files, store, target=0.06))
     assert failed.value.stage == "verify" and isinstance(failed.value.error, RuntimeError)
     assert str(failed.value) == "stage verify failed: RuntimeError: the disk said no"
     # no new version, IN_SERVICE unchanged, and the staging folder is gone
@@ -166,7 +167,7 @@ def test_the_command_line_exits_3_with_the_stage_and_the_reason_first(published,
         raise MemoryError("featurize could not allocate the matrix")
 
     monkeypatch.setattr(build, "featurize", broken)
-    assert cli.main(["build", str(_small_toml(tmp_path, corpus_files, store))]) == cli.EXIT_FAILED
+    assert cli.main(["build", str(_small_toml(tmp_path, corpus_files, store, target=0.06))]) == cli.EXIT_FAILED
     lines = capsys.readouterr().err.splitlines()
     reason = next(i for i, line in enumerate(lines) if line.startswith("tamis: "))
     # after the progress lines (the corpus stage's), the reason on one line, then the traceback

@@ -354,7 +354,7 @@ def test_duplicates_and_conflicts_are_counted_in_the_stats(tmp_path):
     pl.DataFrame({"key": keys + ["n1", "n1", "both", "both"], "count": [1] * 200 + [4, 5, 2, 3]}).write_csv(non)
     corpus = load_corpus(members, non, SETTINGS)
     assert corpus.stats == {"member_rows": 4, "member_duplicates": 1, "non_member_rows": 204,
-                            "non_member_duplicates": 3, "conflicts": 1}
+                            "non_member_duplicates": 3, "conflicts": 1, "added_not_in_export": 0}
     parts = corpus.non_member_parts
     counts = {k: int(c) for part in parts for k, c in zip(part.keys, part.counts)}
     assert counts[b"n1"] == 1 + 4 + 5 and b"both" not in counts and len(counts) == 200

@@ -109,10 +109,13 @@ def _raised_errno(error: BaseException) -> int | None:
 
 @pytest.fixture(scope="module")
 def published_store(corpus, tmp_path_factory) -> Path:
-    """A store with version 1 published, built in this process without Prefect."""
+    """A store with version 1 published, built in this process without Prefect from the members and
+    one more (a build of the corpus then has inputs of its own: identical ones would publish nothing)."""
     store = tmp_path_factory.mktemp("published") / "store"
+    first = store.parent / "first-members.txt"
+    first.write_text(corpus[0].read_text(encoding="utf-8") + "version_one_only_member\n", encoding="utf-8")
     with plain_build_flow() as build:
-        assert build(small_config(*corpus, store, target=TARGET)).published
+        assert build(small_config(first, corpus[1], store, target=TARGET)).published
     return store
 
 
@@ -139,22 +142,30 @@ def test_a_full_disk_while_writing_leaves_the_store_as_it_was(corpus, published_
 # --- two builds at once -------------------------------------------------------------------------
 
 
-def test_two_builds_at_once_publish_one_at_a_time_and_both_stay_whole(tmp_path):
+def test_two_builds_at_once_publish_one_at_a_time_and_the_older_export_never_replaces_the_newer(tmp_path):
     corpora = [write_small_corpus(tmp_path / name, seed=seed) for name, seed in (("a", 11), ("b", 12))]
+    older = corpora[0][0].stat().st_mtime - 60
+    os.utime(corpora[0][0], (older, older))  # a's members export is the older one
     store = tmp_path / "store"
     results = run_fault_runner("race", {"corpora": [[str(m), str(n)] for m, n in corpora], "store": str(store),
                                         "target": TARGET}, tmp_path / "race")
     assert {r["status"] for r in results.values()} == {"exit 0"}, results
-    versions = sorted(r["outcome"]["version"] for r in results.values())
-    assert versions == [2, 3] and all(r["outcome"]["published"] for r in results.values())
-    (a_start, a_end), (b_start, b_end) = results["a"]["window"], results["b"]["window"]
-    assert a_end <= b_start or b_end <= a_start, "both builds were publishing at the same time"
+    a, b = results["a"]["outcome"], results["b"]["outcome"]
+    if a["published"]:  # the older export first: the newer one replaces it
+        (a_start, a_end), (b_start, b_end) = results["a"]["window"], results["b"]["window"]
+        assert a_end <= b_start, "both builds were publishing at the same time"
+        assert b["published"] and (a["version"], b["version"]) == (2, 3)
+    else:  # the newer export first: the older one is refused (rule older_inputs), not published over it
+        assert b["published"] and b["version"] == 2 and results["a"]["window"] is None
+        refused = json.loads(next((store / publish.REFUSED_NAME).glob("*/report.json")).read_text())
+        assert any(reason.startswith("older_inputs: version 2") for reason in refused["gate"]["reasons"])
     for name, (members, _) in zip("ab", corpora):
-        folder = store / str(results[name]["outcome"]["version"])
-        keys = members_of(members)
-        assert open_filter(folder / publish.ARTIFACT_NAME).contains_many(keys).all()
-        assert json.loads((folder / publish.REPORT_NAME).read_text())["corpus"]["members"] == len(keys)
-    assert publish.current_version(store) == 3
+        if results[name]["outcome"]["published"]:
+            folder = store / str(results[name]["outcome"]["version"])
+            keys = members_of(members)
+            assert open_filter(folder / publish.ARTIFACT_NAME).contains_many(keys).all()
+            assert json.loads((folder / publish.REPORT_NAME).read_text())["corpus"]["members"] == len(keys)
+    assert publish.current_version(store) == b["version"]
     assert_no_leftovers(store)
 
 
@@ -215,9 +226,12 @@ def test_after_every_kill_the_next_build_publishes_without_clean_up(kill_matrix,
     members = members_of(corpus[0])
     for point in kill_matrix["points"]:
         store, following = Path(point["store"]), point["next"]
-        assert following.get("published") is True, f"{_point_name(point)}: {following}"
         left_by_kill = publish.published_versions(Path(point["killed"]))
-        assert following["version"] == left_by_kill[-1] + 1, _point_name(point)
+        if following.get("unchanged"):  # the kill came after its publish: the same inputs publish nothing
+            assert following["version"] == left_by_kill[-1] == publish.current_version(Path(point["killed"])) == 2
+        else:
+            assert following.get("published") is True, f"{_point_name(point)}: {following}"
+            assert following["version"] == left_by_kill[-1] + 1, _point_name(point)
         assert assert_serves_every_member(store, members) == following["version"]
         assert_no_leftovers(store)
 
@@ -267,7 +281,11 @@ def test_a_cli_build_killed_after_measured_delays_leaves_a_whole_version(corpus,
     config.write_text(SMALL_CONFIG_TOML + "\n[store]\nkeep = 1\n")
     env = _cli_env(tmp_path)
     store = tmp_path / "store"
-    measured = _start_cli_build(config, members, non_members, store, env)
+    # version 1 holds one member more, so that the killed builds have inputs of their own (a build
+    # of the inputs of the version in service ends at once, publishing nothing)
+    first = tmp_path / "first-members.txt"
+    first.write_text(members.read_text(encoding="utf-8") + "version_one_only_member\n", encoding="utf-8")
+    measured = _start_cli_build(config, first, non_members, store, env)
     started = _first_line_time(measured)
     duration = _published_line_time(measured) - started
     measured.stderr.read()
@@ -285,6 +303,6 @@ def test_a_cli_build_killed_after_measured_delays_leaves_a_whole_version(corpus,
         assert_serves_every_member(store, members_of(members))
     with plain_build_flow() as build:
         following = build(small_config(members, non_members, store, target=TARGET, keep=1))
-    assert following.published
+    assert following.published or following.unchanged  # unchanged: a killed build had published
     assert assert_serves_every_member(store, members_of(members)) == following.version
     assert_no_leftovers(store)

@@ -212,7 +212,7 @@ def test_key_types(built):
 def test_info_is_the_header(built):
     loaded = open_filter(built["path"])
     info = loaded.info
-    assert info["format"] == "2.0"
+    assert info["format"] == "2.1"
     assert info["provenance"] == PROVENANCE
     assert info["feature_spec"] == built["spec"]
     assert info["boundaries"] == built["plan"].boundaries.tolist()
@@ -288,7 +288,7 @@ def test_bad_magic_and_unknown_major_are_refused(built, tmp_path):
         open_filter(bad)
     raw[8:10] = struct.pack("<H", 3)
     bad.write_bytes(bytes(raw))
-    with pytest.raises(FilterLoadError, match="format 3.0 not supported"):
+    with pytest.raises(FilterLoadError, match="format 3.1 not supported"):
         open_filter(bad)
     with pytest.raises(FilterLoadError, match="cannot read artifact"):
         open_filter(tmp_path / "absent")

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 import tamis.flows.build as build
-from tamis import cli, publish
+from tamis import additions, cli, publish
 from tamis.loader import open_filter
 from tamis.booster import compile_booster
 from tamis.model import ModelChoice
@@ -77,5 +77,5 @@ def test_publish_plain_ships_the_plain_filter_and_the_loader_answers_it(corpus, 
     assert report["false_negatives"] == 0 and report["heldout"]["fpr_upper"] <= TARGET
     assert report["model"]["trees"] == 0 and len(report["regions"]) == 1
     assert report["size"]["total_bytes"] == path.stat().st_size
-    assert sorted(p.name for p in outcome.folder.iterdir()) == sorted([publish.ARTIFACT_NAME, publish.REPORT_NAME, REPORT_PAGE_NAME])
+    assert sorted(p.name for p in outcome.folder.iterdir()) == sorted([publish.ARTIFACT_NAME, additions.MEMBERS_NAME, publish.REPORT_NAME, REPORT_PAGE_NAME])
     assert "the plain filter is published instead" in cli.summary_text(report, outcome.folder)

@@ -54,7 +54,7 @@ def test_a_store_with_the_old_pointer_name_is_read_and_migrated_once(tmp_path):
     with publish.store_lock(store):  # what every build and rollback takes first
         assert (store / publish.POINTER_NAME).read_text() == "2\n"
         assert not (store / publish.LEGACY_POINTER_NAME).exists()
-    assert publish.rollback(store) == 1 and publish.current_version(store) == 1
+    assert publish.rollback(store).version == 1 and publish.current_version(store) == 1
     # a crash between writing the new pointer and removing the old: the new one wins, the old goes
     (store / publish.LEGACY_POINTER_NAME).write_text("2\n")
     assert publish.current_version(store) == 1
@@ -125,7 +125,7 @@ def test_rollback_goes_back_one_version_and_refuses_past_the_first(tmp_path):
     store = tmp_path / "store"
     for i in range(2):
         _publish(store, f"b{i}")
-    assert publish.rollback(store) == 1
+    assert publish.rollback(store).version == 1
     assert publish.current_version(store) == 1
     with pytest.raises(publish.StoreError, match="is the oldest published version"):
         publish.rollback(store)

@@ -25,11 +25,15 @@ PIXELS = tuple(round(side * FIGURE_DPI) for side in FIGURE_INCHES)
 
 @pytest.fixture(scope="module")
 def builds(tmp_path_factory):
-    """Two builds of one corpus into one store: the second has a version in service (drift)."""
+    """Two builds of one corpus into one store: the second has a version in service (drift). The
+    first holds one member more, so that the second has inputs of its own (a build of the inputs of
+    the version in service publishes nothing) and version 1 misses none of its members."""
     root = tmp_path_factory.mktemp("page")
     members, lookups = write_corpus(root)
+    first_members = root / "first-members.txt"
+    first_members.write_text(members.read_text(encoding="utf-8") + "version_one_only_member\n", encoding="utf-8")
     with plain_build_flow() as build_flow:  # the flow's own body, without Prefect's start-up
-        first = build_flow(small_config(members, lookups, root / "store"))
+        first = build_flow(small_config(first_members, lookups, root / "store"))
         second = build_flow(small_config(members, lookups, root / "store"))
     return first, second
 

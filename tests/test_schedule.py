@@ -7,6 +7,7 @@ process by its id.
 """
 
 import asyncio
+import dataclasses
 import datetime
 import json
 import os
@@ -155,8 +156,14 @@ def test_serving_stops_only_once_the_runner_has_let_its_last_run_go(monkeypatch)
 
 def test_a_published_build_completes_with_its_summary():
     summary = nightly.outcome_summary(_outcome(True, []))
-    assert summary == {"published": True, "version": 4, "folder": "/srv/store/4", "reasons": []}
+    assert summary == {"published": True, "unchanged": False, "version": 4, "folder": "/srv/store/4", "reasons": []}
     assert nightly.final_state(summary) is summary
+
+
+def test_a_build_of_the_inputs_in_service_completes_too():
+    outcome = dataclasses.replace(_outcome(False, []), unchanged=True)
+    summary = nightly.outcome_summary(outcome)
+    assert summary["unchanged"] and nightly.final_state(summary) is summary
 
 
 def test_a_refused_build_fails_with_the_gate_reasons_as_its_message():
