@@ -64,6 +64,7 @@ from tamis.query import (
     pack_batch,
     query_path,
 )
+from tamis.traffic import DEFAULT_SAMPLE_RATE, Served, TrafficRecorder
 from tamis.trees import Forest
 
 LOG = logging.getLogger(__name__)
@@ -256,7 +257,10 @@ class DegradedFilter:
         return {"degraded": True, "reason": self.reason, "path": str(self.path)}
 
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
-        return np.ones(len(pack_batch(keys)), dtype=bool)
+        return self.answer_packed(pack_batch(keys))
+
+    def answer_packed(self, packed: PackedKeys) -> np.ndarray:
+        return np.ones(len(packed), dtype=bool)
 
     def contains(self, key: str | bytes) -> bool:
         key_bytes(key)
@@ -386,6 +390,13 @@ class InService:
     through: int = 0
     pending: PendingKeys = NO_PENDING
 
+    @cached_property
+    def served(self) -> Served:
+        """The build this version is, and what it certified, as the traffic recorder files it."""
+        provenance = self.filter.info.get("provenance", {}) if not self.filter.degraded else {}
+        return Served(build_id=provenance.get("build_id"), version=self.version, fpr=self.filter.fpr,
+                      fpr_upper=self.filter.fpr_upper, target=self.filter.target)
+
 
 def _file_identity(path: Path) -> tuple:
     status = os.stat(path)
@@ -430,9 +441,10 @@ class ServedFilter:
     """
 
     def __init__(self, folder: Path, on_error: OnError = "raise", refresh_seconds: float | None = None,
-                 answer_path: str | None = None):
+                 answer_path: str | None = None, traffic: TrafficRecorder | None = None):
         if refresh_seconds is not None and not refresh_seconds > 0:
             raise ValueError(f"refresh_seconds must be a positive number of seconds or None, got {refresh_seconds!r}")
+        self._traffic = traffic
         self.store = folder
         self._on_error = on_error
         self._answer_path = answer_path or default_path()
@@ -493,8 +505,12 @@ class ServedFilter:
                 LOG.exception(f"{self.store}: refreshing the version in service failed; version {self.version} stays")
 
     def close(self) -> None:
-        """Stop refreshing and answering."""
+        """Stop refreshing and answering; write the lookup sample still held."""
+        if self._closed.is_set():
+            return
         self._closed.set()
+        if self._traffic is not None:
+            self._traffic.flush()
         if self._refresher is not None and self._refresher is not threading.current_thread():
             self._refresher.join()
 
@@ -518,14 +534,40 @@ class ServedFilter:
         served = self._current()
         if type(key) is not bytes:
             key = key_bytes(key)
-        return key in served.pending.keys or served.filter.contains(key)  # one set probe more
+        answer = key in served.pending.keys or served.filter.contains(key)  # one set probe more
+        if self._traffic is not None:
+            self._traffic.record(served.served, (key,), answer)
+        return answer
 
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
         served = self._current()
-        if not served.pending.keys or served.filter.degraded:
-            return served.filter.contains_many(keys)
         packed = pack_batch(keys)
-        return served.pending.mark(packed, served.filter.answer_packed(packed))
+        answers = served.filter.answer_packed(packed)
+        if served.pending.keys and not served.filter.degraded:
+            answers = served.pending.mark(packed, answers)
+        if self._traffic is not None:
+            offsets = packed.offsets
+            self._traffic.record(served.served, lambda kept: [packed.buffer[offsets[i] : offsets[i + 1]] for i in kept], answers)
+        return answers
+
+    # The service's traffic (open with sample_folder= or observe=True).
+
+    def _recorder(self) -> TrafficRecorder:
+        if self._traffic is None:
+            raise ValueError(f"the filter of store {self.store} records no traffic; open it with sample_folder=FOLDER "
+                             f"(or observe=True) to confirm answers and observe the rate")
+        return self._traffic
+
+    def confirm(self, key: str | bytes, member: bool) -> None:
+        """Say what the authoritative set answered for a key this filter answered "maybe": a member,
+        or a false positive. The observed rate (`observed`) counts these."""
+        key_bytes(key)  # the same check of the key as a lookup's
+        self._recorder().confirm(self._served.served, bool(member))
+
+    def observed(self, seconds: float | None = None) -> dict:
+        """The false-positive rate observed in service, over the last `seconds` or since opening:
+        lookups, false_positives, rate, rate_low, rate_high and more (`tamis.traffic.observed_figures`)."""
+        return self._recorder().observed(seconds)
 
     def __contains__(self, key: str | bytes) -> bool:
         return self.contains(key)
@@ -575,10 +617,18 @@ class ServedFilter:
 
 def open_filter(
     path: str | os.PathLike, on_error: OnError = "raise", answer_path: str | None = None, *,
-    refresh_seconds: float | None = None,
+    refresh_seconds: float | None = None, sample_folder: str | os.PathLike | None = None,
+    sample_rate: float = DEFAULT_SAMPLE_RATE, observe: bool = False,
 ) -> MembershipFilter | DegradedFilter | ServedFilter:
     """Open an artifact written by `tamis.package.package_artifact`, or a store folder's version in
     service (a `ServedFilter`, refreshed every `refresh_seconds` when given).
+
+    A store's filter can record its traffic (`tamis.traffic`): with `sample_folder`, each lookup is
+    kept with probability `sample_rate` and the per-key counts are written there, one file per
+    process and hour and on `close()`, for `tamis build --non-members FOLDER`; with `sample_folder`
+    or `observe=True`, `confirm(key, member)` after each authoritative check of a "maybe" feeds
+    `observed()`, the rate the service really gets, and a warning is logged when it rises above
+    the certified bound.
 
     answer_path: "numpy" or "compiled" (`tamis.query`); by default the compiled path when numba is
     installed, the numpy path otherwise. Both give the same answers; `MembershipFilter.using`
@@ -595,9 +645,10 @@ def open_filter(
         raise ValueError(f"on_error must be one of {list(ON_ERROR_CHOICES)}, got {on_error!r}")
     path = Path(path)
     if path.is_dir():
-        return ServedFilter(path, on_error, refresh_seconds, answer_path)
-    if refresh_seconds is not None:
-        raise ValueError(f"refresh_seconds applies to a store folder; {path} is not one")
+        traffic = TrafficRecorder(sample_folder, sample_rate) if sample_folder is not None or observe else None
+        return ServedFilter(path, on_error, refresh_seconds, answer_path, traffic)
+    if refresh_seconds is not None or sample_folder is not None or observe:
+        raise ValueError(f"refresh_seconds, sample_folder and observe apply to a store folder; {path} is not one")
     try:
         return _open_checked(path, answer_path or default_path())
     except FilterLoadError as error:

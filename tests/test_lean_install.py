@@ -58,10 +58,11 @@ def test_the_loader_imports_no_build_stage_and_no_build_library():
     loaded = subprocess.run([sys.executable, "-c", code], env=numpy_only_env(), capture_output=True, text=True,
                             check=True).stdout.split()
     ours = {name for name in loaded if name.startswith("tamis")}
-    # tamis.additions and tamis.keylines: the keys added to a store between builds, served on top
+    # tamis.additions and tamis.keylines: the keys added to a store between builds, served on top;
+    # tamis.traffic: the lookup sample and the observed rate a served filter records
     assert ours == {"tamis", "tamis.additions", "tamis.artifact", "tamis.bloom", "tamis.compiled", "tamis.errors",
                     "tamis.features", "tamis.format", "tamis.fuse", "tamis.keylines", "tamis.loader", "tamis.query",
-                    "tamis.sizing", "tamis.store", "tamis.trees"}
+                    "tamis.sizing", "tamis.store", "tamis.traffic", "tamis.trees"}
     assert not {name.split(".")[0] for name in loaded} & {*BUILD_STACK, "pandas", "numba"}
 
 
