@@ -536,7 +536,7 @@ class ServedFilter:
             key = key_bytes(key)
         answer = key in served.pending.keys or served.filter.contains(key)  # one set probe more
         if self._traffic is not None:
-            self._traffic.record(served.served, (key,), answer)
+            self._traffic.record_one(served.served, key, answer)
         return answer
 
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:

@@ -53,6 +53,7 @@ import time
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import cached_property
 from datetime import datetime, timezone
 from pathlib import Path
 from statistics import NormalDist
@@ -109,9 +110,19 @@ class Served:
     fpr_upper: float | None
     target: float | None
 
+    @cached_property
+    def name(self) -> str:
+        """The key its counts are filed under: the build's identity (a version number is reused
+        by a store wiped and rebuilt)."""
+        return self.build_id or f"version {self.version}"
+
     def as_dict(self) -> dict:
         return {"build_id": self.build_id, "version": self.version, "fpr": self.fpr,
                 "fpr_upper": self.fpr_upper, "target": self.target}
+
+
+# The counts a sample file keeps per version served (its "no" answers follow from them).
+COUNT_FIELDS = ("lookups", "maybe", "false_positives", "members")
 
 
 @dataclass
@@ -120,20 +131,18 @@ class Counts:
     the service confirmed as non-members (false positives) and as members."""
 
     lookups: int = 0
-    no: int = 0
     maybe: int = 0
     false_positives: int = 0
     members: int = 0
 
     def add(self, other: Counts) -> None:
         self.lookups += other.lookups
-        self.no += other.no
         self.maybe += other.maybe
         self.false_positives += other.false_positives
         self.members += other.members
 
     def as_dict(self) -> dict:
-        return {"lookups": self.lookups, "no": self.no, "maybe": self.maybe,
+        return {"lookups": self.lookups, "no": self.lookups - self.maybe, "maybe": self.maybe,
                 "false_positives": self.false_positives, "members": self.members}
 
 
@@ -158,10 +167,6 @@ def observed_figures(counts: Counts, confidence: float = OBSERVED_CONFIDENCE) ->
 class _Window:
     start: float
     counts: dict[str, Counts] = field(default_factory=dict)
-
-
-def _identity(served: Served) -> str:
-    return served.build_id or f"version {served.version}"
 
 
 class TrafficRecorder:
@@ -202,6 +207,7 @@ class TrafficRecorder:
         self._period_counts: dict[str, Counts] = {}
         self._served: dict[str, Served] = {}
         self._window = _Window(self._window_start(now))
+        self._window_end = self._window.start + window_seconds
         self._windows: deque[_Window] = deque(maxlen=KEPT_WINDOWS)
         self._total: dict[str, Counts] = {}
         self._skip = self._draw_skip()
@@ -228,26 +234,36 @@ class TrafficRecorder:
 
     # Recording -----------------------------------------------------------------------------------
 
-    def record(self, served: Served, keys: list[bytes] | Callable[[list[int]], list[bytes]], answers: np.ndarray | bool) -> None:
-        """Record lookups answered by `served`: `answers` (one bool or a bool array) and their keys,
-        or a function from kept positions to those keys (so a batch builds bytes only for the few
-        kept)."""
-        if isinstance(answers, (bool, np.bool_)):
-            n, maybe = 1, int(answers)
-        else:
-            n, maybe = len(answers), int(np.count_nonzero(answers))
-        flush = None
+    def record(self, served: Served, keys: list[bytes] | Callable[[list[int]], list[bytes]], answers: np.ndarray) -> None:
+        """Record a batch of lookups answered by `served`: `answers` and their keys, or a function
+        from kept positions to those keys (so a batch builds bytes only for the few kept)."""
+        n, maybe = len(answers), int(np.count_nonzero(answers))
         with self._lock:
             flush = self._roll(self._clock())
             counts = self._counts_for(served)
             counts.lookups += n
             counts.maybe += maybe
-            counts.no += n - maybe
             kept = self._kept_positions(n)
             if kept:
                 chosen = keys(kept) if callable(keys) else [keys[i] for i in kept]
                 for key in chosen:
                     self._period_keys[key] = self._period_keys.get(key, 0) + 1
+        if flush is not None:
+            self._write(*flush)
+
+    def record_one(self, served: Served, key: bytes, answer: bool) -> None:
+        """`record` of one lookup, with no batch set-up: the hot path of a single-key service."""
+        with self._lock:
+            flush = self._roll(self._clock())
+            counts = self._window.counts.get(served.name) or self._counts_for(served)
+            counts.lookups += 1
+            if answer:
+                counts.maybe += 1
+            if self._skip:
+                self._skip -= 1
+            else:
+                self._period_keys[key] = self._period_keys.get(key, 0) + 1
+                self._skip = self._draw_skip()
         if flush is not None:
             self._write(*flush)
 
@@ -267,9 +283,8 @@ class TrafficRecorder:
     def _counts_for(self, served: Served) -> Counts:
         """The current window's counts of `served` (lock held); the period's and the total follow
         when the window closes."""
-        name = _identity(served)
-        self._served[name] = served
-        return self._window.counts.setdefault(name, Counts())
+        self._served[served.name] = served
+        return self._window.counts.setdefault(served.name, Counts())
 
     # Windows and periods -------------------------------------------------------------------------
 
@@ -307,10 +322,11 @@ class TrafficRecorder:
     def _roll(self, now: float):
         """Close the windows and the period that have ended by `now` (lock held); the period's
         contents to write, or None."""
-        if now < self._window.start + self.window_seconds:
+        if now < self._window_end:
             return None
         self._close_window()
         self._window = _Window(self._window_start(now))
+        self._window_end = self._window.start + self.window_seconds
         if now - self._period_start < self.period_seconds:
             return None
         return self._take_period(now)
@@ -340,6 +356,7 @@ class TrafficRecorder:
             now = self._clock()
             self._close_window()
             self._window = _Window(now)
+            self._window_end = now + self.window_seconds
             taken = self._take_period(now)
         self._write(*taken)
 
@@ -460,7 +477,7 @@ def read_sample_folder(folder: Path, max_age_seconds: float | None, now: float) 
     """Every sample file of `folder` whose period ended at most `max_age_seconds` before `now`,
     summed key by key; served versions' counts summed per build."""
     totals: dict[bytes, int] = {}
-    served: dict[str, dict] = {}
+    counts: dict[str, tuple[Served, Counts]] = {}
     replicas, rates, starts, ends = set(), set(), [], []
     files = skipped = 0
     for path in sample_files(folder):
@@ -476,17 +493,12 @@ def read_sample_folder(folder: Path, max_age_seconds: float | None, now: float) 
         for key, count in zip(payload["keys"], payload["counts"]):
             totals[key] = totals.get(key, 0) + count
         for entry in payload["served"]:
-            name = entry.get("build_id") or f"version {entry.get('version')}"
-            row = served.setdefault(name, {k: entry.get(k) for k in ("build_id", "version", "fpr", "fpr_upper", "target")}
-                                    | Counts().as_dict())
-            for k in Counts().as_dict():
-                row[k] += int(entry.get(k, 0))
+            meta = Served(*(entry.get(k) for k in ("build_id", "version", "fpr", "fpr_upper", "target")))
+            counts.setdefault(meta.name, (meta, Counts()))[1].add(Counts(**{k: int(entry.get(k, 0)) for k in COUNT_FIELDS}))
     if len(rates) > 1:
         raise BadInput(f"{folder}: its files were sampled at different rates {sorted(rates)}; their counts cannot be summed "
                        f"as one sample; keep one rate a folder")
-    observed = [{**row, **{k: v for k, v in observed_figures(Counts(**{k: row[k] for k in Counts().as_dict()})).items()
-                           if k in ("rate", "rate_low", "rate_high", "non_member_lookups", "unconfirmed")}}
-                for row in served.values()]
+    observed = [{**meta.as_dict(), **observed_figures(summed)} for meta, summed in counts.values()]
     return SampleFolder(
         keys=list(totals), counts=np.fromiter(totals.values(), dtype=np.int64, count=len(totals)),
         files=files, skipped_old=skipped, replicas=len(replicas), sample_rates=sorted(rates),

@@ -48,7 +48,10 @@ def test_each_lookup_is_kept_with_the_sample_rate(batch):
     keys = [b"k%d" % i for i in range(batch)]
     answers = np.zeros(batch, dtype=bool)
     for _ in range(lookups // batch):
-        recorder.record(SERVED, keys, answers if batch > 1 else False)
+        if batch > 1:
+            recorder.record(SERVED, keys, answers)
+        else:
+            recorder.record_one(SERVED, keys[0], False)
     kept = sum(recorder._period_keys.values())
     low, high = binomial_range(lookups, rate)
     assert low <= kept <= high
@@ -134,9 +137,9 @@ def test_a_file_of_another_kind_in_the_folder_is_named_and_a_writers_temporary_i
 def test_a_period_ends_in_a_file_and_close_writes_the_rest(tmp_path):
     clock = Clock()
     recorder = TrafficRecorder(tmp_path, 1.0, clock=clock, period_seconds=3600, window_seconds=300)
-    recorder.record(SERVED, [b"first"], True)
+    recorder.record_one(SERVED, b"first", True)
     clock.now += 3601
-    recorder.record(SERVED, [b"second"], False)  # the first period has ended: its file is written
+    recorder.record_one(SERVED, b"second", False)  # the first period has ended: its file is written
     (written,) = sample_files(tmp_path)
     assert decode_sample(written, written.read_bytes())["keys"] == [b"first"]
     recorder.flush()
