@@ -27,6 +27,7 @@ import numpy as np
 from tamis.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys
 from tamis.budgets import FilterChoice
 from tamis.fuse import FuseFilter, build_fuse
+from tamis.sizing import built_bloom_fpr, fuse_fpr
 
 FilterMode = Literal["bloom", "fuse", "yes", "no"]  # tamis.format.REGION_MODES
 
@@ -79,6 +80,17 @@ class RegionFilter:
     def nbytes(self) -> int:
         """Bytes taken by the stored array."""
         return self.words.nbytes
+
+
+def region_rate(region: RegionFilter) -> float:
+    """The false-positive rate of a built region filter for random keys of its region: a Bloom
+    filter's from its very bits (`tamis.sizing.built_bloom_fpr`), a fuse filter's 2^-r, 1 for "yes"
+    and 0 for "no". The plan's rates are these, so the plan is the filter that gets built."""
+    if region.mode == "bloom":
+        return built_bloom_fpr(region.words, region.bits, region.hashes)
+    if region.mode == "fuse":
+        return fuse_fpr(region.width)
+    return 1.0 if region.mode == "yes" else 0.0
 
 
 def _no_bits() -> np.ndarray:
