@@ -13,7 +13,7 @@ from tamis.sizing import bloom_bits, lower_bound_bits
 from tamis.config import BuildConfig
 from tamis.corpus import Corpus
 from tamis.drift import Drift
-from tamis.hot_keys import Sparing
+from tamis.planning import SettledPlan
 from tamis.verify import GateCheck, PlainComparison, Verification, refusal_reasons
 
 
@@ -63,7 +63,7 @@ def build_report(
     drift: Drift,
     comparison: PlainComparison,
     published_plain: bool,
-    sparing: Sparing,
+    settled: SettledPlan,
     version: int | None,
     timings: dict,
 ) -> dict:
@@ -99,7 +99,7 @@ def build_report(
             **verification.heldout.strata_report(),
             "aim_fpr": aim_fpr,
             "aim_below_half_target": aim_fpr < target / 2,
-            "hot_keys": sparing.as_report(),
+            "hot_keys": settled.sparing.as_report(),
         },
         "false_negatives": verification.false_negatives,
         "answer_paths": verification.paths.as_report(),
@@ -121,6 +121,7 @@ def build_report(
         "model": {"trees": choice.trees, "params": choice.params, "candidates": choice.candidates},
         "regions": _region_rows(plan, filters),
         "expected_fpr": plan.expected_fpr,
+        "plan": settled.as_report(),
         "drift": drift.as_report(),
         "plain_filter": comparison.as_report(config.gate.when_model_does_not_pay, published_plain),
         "gate": {"passed": not reasons, "reasons": reasons, "checks": [check.as_report() for check in checks]},

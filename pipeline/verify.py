@@ -226,17 +226,6 @@ def measure(heavy_answers: np.ndarray, heldout_answers: np.ndarray, strata: Stra
     )
 
 
-def planned_rate(region_rates, heavy_regions, check_regions, strata: Strata, check_counts: np.ndarray) -> float:
-    """The rate a plan will have, estimated on keys it was not fitted on: every heavy key at the
-    rate of its region, the tail at the lookup-weighted rate of the check keys (validation keys
-    that took no part in the model's choice, the boundaries or the budgets)."""
-    rates = np.asarray(region_rates, dtype=np.float64)
-    heavy = float(np.dot(strata.heavy_counts, rates[heavy_regions]))
-    checked = check_counts.sum()
-    tail = strata.tail_lookups * float(np.dot(check_counts, rates[check_regions])) / checked if checked else 0.0
-    return (heavy + tail) / strata.lookups
-
-
 def aim_fpr(
     target: float,
     strata: Strata,
@@ -251,32 +240,75 @@ def aim_fpr(
     false-positive lookups, with variance f V_gate (heavy counts' Poisson noise plus the held-out
     tail's weights: V_gate = heavy lookups + sum of held-out c^2 / s^2). The plan's own rate is
     itself uncertain: the tail's share is estimated on `validation_counts`, the keys that pin the
-    plan's rate (the check keys, `planned_rate`; f times sum of their c^2 / s_val^2), and each heavy key is a false positive by the luck of hashing (f (1 - f) sum of heavy
+    plan's rate (the check keys, `tamis.planning`; f times sum of their c^2 / s_val^2), and each heavy key is a false positive by the luck of hashing (f (1 - f) sum of heavy
     c^2). In all but the unluckiest builds the total stays below f L + s sqrt(those variances), where
     s = `aim_sigmas` for the sampling terms; when the build picks each region's hash seed among
     `seed_candidates` to spare the heavy keys, the luck term takes the quantile of the best of them
     (it only shrinks). Plan for the largest f whose unlucky total still has a bound at most the
     target; both sides grow with f, so bisection finds it.
     """
-    lookups = strata.lookups
-    tail_share = strata.tail_sampled
-    validation_share = float(validation_counts.sum()) / strata.tail_lookups if strata.tail_lookups else 0.0
-    heldout = strata.heldout_counts.astype(np.float64)
-    validation = validation_counts.astype(np.float64)
-    heavy = strata.heavy_counts.astype(np.float64)
-    gate_unit = strata.heavy_lookups + (float(np.dot(heldout, heldout)) / tail_share**2 if tail_share else 0.0)
-    plan_unit = float(np.dot(validation, validation)) / validation_share**2 if validation_share else 0.0
-    luck_unit = float(np.dot(heavy, heavy))
+    plan_unit = _plan_unit(strata, validation_counts)
+    luck_unit = float(np.dot(strata.heavy_counts.astype(np.float64), strata.heavy_counts))
     luck_sigmas = best_of_quantile(aim_sigmas, seed_candidates)
-    weight = strata.heaviest_weight
+    gate_unit = _gate_unit(strata)
 
     def passes(f: float) -> bool:
-        expected = f * lookups
-        variance = f * gate_unit
-        unlucky = expected + aim_sigmas * math.sqrt(variance + f * plan_unit) + luck_sigmas * math.sqrt(f * (1 - f) * luck_unit)
-        return float(gamma_upper(unlucky, variance * unlucky / expected, weight, confidence)) / lookups <= target
+        luck = luck_sigmas * math.sqrt(f * (1 - f) * luck_unit)
+        return _unlucky_bound(f * strata.lookups, f * gate_unit, f * plan_unit, luck, aim_sigmas, strata, confidence) <= target
 
-    low, high = 0.0, target
+    return _largest_passing(passes, target)
+
+
+def tail_allowance(
+    target: float, strata: Strata, check_counts: np.ndarray, confidence: float, aim_sigmas: float, heavy_fp_lookups: float
+) -> float | None:
+    """The largest lookup-weighted rate of the tail a build may have once its filters are built and
+    its heavy keys' false-positive lookups are known exactly (`heavy_fp_lookups`), so that it passes
+    the gate as often as `aim_fpr` promises; None when the heavy keys alone leave no room.
+
+    The same reckoning as `aim_fpr` with the heavy stratum fixed: the gate sees heavy_fp + t T
+    false-positive lookups (T the tail's lookups) with variance heavy_fp + t V_tail, the check
+    keys that pin t add t V_check, and the heavy keys' luck of hashing is spent (no luck term).
+    """
+    tail_unit = _gate_unit(strata) - strata.heavy_lookups
+    plan_unit = _plan_unit(strata, check_counts)
+
+    def passes(t: float) -> bool:
+        expected = heavy_fp_lookups + t * strata.tail_lookups
+        return _unlucky_bound(expected, heavy_fp_lookups + t * tail_unit, t * plan_unit, 0.0, aim_sigmas, strata, confidence) <= target
+
+    if not passes(0.0):
+        return None
+    return _largest_passing(passes, 1.0)
+
+
+def _gate_unit(strata: Strata) -> float:
+    """The gate's variance per unit of rate: heavy lookups (Poisson) plus the held-out tail's
+    weights, sum of held-out c^2 / s^2."""
+    share = strata.tail_sampled
+    heldout = strata.heldout_counts.astype(np.float64)
+    return strata.heavy_lookups + (float(np.dot(heldout, heldout)) / share**2 if share else 0.0)
+
+
+def _plan_unit(strata: Strata, validation_counts: np.ndarray) -> float:
+    """The variance per unit of rate of the tail's rate estimated on `validation_counts` (the check keys)."""
+    share = float(validation_counts.sum()) / strata.tail_lookups if strata.tail_lookups else 0.0
+    validation = validation_counts.astype(np.float64)
+    return float(np.dot(validation, validation)) / share**2 if share else 0.0
+
+
+def _unlucky_bound(expected: float, gate_variance: float, plan_variance: float, luck: float, sigmas: float,
+                   strata: Strata, confidence: float) -> float:
+    """The gate's bound on a build that lands `sigmas` standard deviations (and `luck`) above its
+    expected false-positive lookups; the gate's variance grows with the total as a Poisson's would."""
+    unlucky = expected + sigmas * math.sqrt(gate_variance + plan_variance) + luck
+    variance = gate_variance * unlucky / expected if expected > 0 else gate_variance
+    return float(gamma_upper(unlucky, variance, strata.heaviest_weight, confidence)) / strata.lookups
+
+
+def _largest_passing(passes, high: float) -> float:
+    """The largest rate in [0, high] that passes (to 2^-50 of high), for a test monotone in the rate."""
+    low = 0.0
     for _ in range(50):
         mid = (low + high) / 2
         low, high = (mid, high) if passes(mid) else (low, mid)
