@@ -474,6 +474,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 settings=config.gate,
                 baseline=drift.baseline(),
                 comparison=comparison,
+                plan=verify.PlanFigures(aim, chosen.settled.estimate, chosen.settled.allowed),
             )
             passed = not verify.refusal_reasons(checks)
             next_version = publish.next_version(store)

@@ -473,13 +473,46 @@ def _check_answer_paths(agreement: PathAgreement) -> GateCheck:
     return GateCheck("answer_paths", True, 0, 0, f"{words} answer alike")
 
 
-def _check_fpr_upper(verification: Verification, target: float, fpr_slack: float) -> GateCheck:
+@dataclass(frozen=True)
+class PlanFigures:
+    """What the build planned, for the gate's advice: the aim it planned for, the settled plan's own
+    estimate of its built filters and what their heavy outcome allowed (None: nothing did,
+    `tamis.planning`)."""
+
+    aim: float
+    estimate: float
+    allowed: float | None
+
+
+def _check_fpr_upper(verification: Verification, target: float, settings: GateSettings, plan: PlanFigures | None) -> GateCheck:
     held = verification.heldout
-    limit = target * (1 + fpr_slack)
+    limit = target * (1 + settings.fpr_slack)
     words = f"the rate's {held.confidence:.0%} upper bound {held.fpr_upper:.4%} (heavy keys exact, the tail bounded)"
     if held.fpr_upper > limit:
-        return GateCheck("fpr_upper", False, held.fpr_upper, limit, f"{words} is above the allowed {limit:.4%}")
+        return GateCheck("fpr_upper", False, held.fpr_upper, limit,
+                         f"{words} is above the allowed {limit:.4%}; {fpr_advice(held, limit, settings, plan)}")
     return GateCheck("fpr_upper", True, held.fpr_upper, limit, f"{words} is within the allowed {limit:.4%}")
+
+
+def fpr_advice(held: Measurement, limit: float, settings: GateSettings, plan: PlanFigures | None) -> str:
+    """What to change when rule fpr_upper refuses: the aim, the plan's estimate and the measured
+    rate side by side, then the settings that would have passed."""
+    if plan is None:
+        return f"measured {held.fpr:.4%}; plan for a lower rate (raise gate.aim_sigmas from {settings.aim_sigmas:g})"
+    allowed = "nothing (the heavy keys alone)" if plan.allowed is None else f"{plan.allowed:.4%}"
+    side = f"aim {plan.aim:.4%}, plan estimate {plan.estimate:.4%} (allowed {allowed}), measured {held.fpr:.4%}"
+    ways = []
+    if plan.allowed is None or plan.estimate > plan.allowed:
+        ways.append("a cap on every region's rate (regions.max_region_fpr, e.g. 0.5) so that no heavy key lands in a region "
+                    "answering yes, or the plain filter (gate.when_model_does_not_pay = \"publish_plain\")")
+    if held.fpr > plan.estimate:
+        ways.append(f"a lower aim: the held-out keys measured {held.fpr / plan.estimate:.2f}x the plan's estimate, so plan "
+                    f"near {plan.aim * limit / held.fpr_upper:.4%} (raise gate.aim_sigmas from {settings.aim_sigmas:g})")
+    if held.fpr <= limit:
+        ways.append(f"a tighter bound: the measured rate is within the allowed {limit:.4%} but the tail's sampling adds "
+                    f"{held.fpr_upper - held.fpr:.4%}; more held-out lookups (raise corpus.heldout_share) narrow it, or "
+                    f"gate.fpr_slack = {held.fpr_upper / limit * (1 + settings.fpr_slack) - 1:.3f} accepts this bound")
+    return f"{side}; would pass with {'; or '.join(ways) if ways else 'a lower aim (raise gate.aim_sigmas)'}"
 
 
 def _check_artifact_bytes(total_bytes: int, max_bytes: int) -> GateCheck:
@@ -596,13 +629,15 @@ def gate_checks(
     settings: GateSettings,
     baseline: Baseline | None,
     comparison: PlainComparison | None = None,
+    plan: PlanFigures | None = None,
 ) -> list[GateCheck]:
     """Every gate rule checked after the artifact is written, in a fixed order (model_pays only
-    when the plain filter was built to compare with)."""
+    when the plain filter was built to compare with); `plan` words the advice of a refusal by
+    fpr_upper."""
     checks = [
         _check_false_negatives(verification),
         _check_answer_paths(verification.paths),
-        _check_fpr_upper(verification, target, settings.fpr_slack),
+        _check_fpr_upper(verification, target, settings, plan),
         _check_artifact_bytes(total_bytes, settings.max_artifact_bytes),
         _check_size_growth(total_bytes, settings.max_size_growth, baseline),
         _check_member_drop(members, settings.max_member_drop, baseline),

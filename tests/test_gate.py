@@ -13,6 +13,7 @@ from tamis.verify import (
     Measurement,
     PathAgreement,
     PlainComparison,
+    PlanFigures,
     Strata,
     Verification,
     gate_checks,
@@ -38,6 +39,26 @@ def verification(false_negatives: int = 0, fpr_upper: float = 0.008, differing: 
 def checks(total_bytes: int = 10_000, members: int = 10_000, baseline: Baseline | None = None, check=None, **gate):
     return gate_checks(check or verification(), target=TARGET, total_bytes=total_bytes, members=members,
                        settings=GateSettings(**gate), baseline=baseline)
+
+
+def advice(plan: PlanFigures, fpr_upper: float = 0.0105) -> str:
+    found = gate_checks(verification(fpr_upper=fpr_upper), target=TARGET, total_bytes=1, members=1, settings=GateSettings(),
+                        baseline=None, plan=plan)
+    return refusal_reasons(found)[0]
+
+
+def test_a_refused_rate_names_aim_estimate_and_measurement_and_what_would_pass():
+    # measured 0.6% (verification()), bound 1.05%: within the target, so a tighter bound would pass
+    words = advice(PlanFigures(aim=0.0093, estimate=0.0061, allowed=0.0062))
+    assert "aim 0.9300%, plan estimate 0.6100% (allowed 0.6200%), measured 0.6000%" in words
+    assert "corpus.heldout_share" in words and "gate.fpr_slack = 0.050" in words
+    assert "max_region_fpr" not in words and "aim_sigmas" not in words
+    # measured above the plan's estimate: a lower aim, scaled by how far the bound overshot
+    words = advice(PlanFigures(aim=0.0093, estimate=0.005, allowed=0.0062))
+    assert "1.20x the plan's estimate" in words and f"near {0.0093 / 1.05:.4%}" in words and "gate.aim_sigmas" in words
+    # no plan fitted its allowance: a cap or the plain filter
+    words = advice(PlanFigures(aim=0.0093, estimate=0.0070, allowed=None))
+    assert "allowed nothing" in words and "regions.max_region_fpr" in words and "publish_plain" in words
 
 
 def reasons(**kwargs) -> list[str]:
