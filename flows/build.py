@@ -179,6 +179,14 @@ def answer_chunk(chunk: Chunk, path: Path, every_path: bool) -> np.ndarray:
     return verify.every_path_answers(opened, chunk.items) if every_path else opened.contains_many(chunk.items)
 
 
+@_stage("held-out regions")
+def region_chunk(chunk: Chunk, path: Path) -> np.ndarray:
+    """The region of each key of one chunk in the artifact at `path`: its features scored by the
+    artifact's own forest (for the report's per-region rates; no choice depends on them)."""
+    opened = open_filter(path)
+    return region_of(score_batch(opened.forest, featurize(chunk.items, opened.feature_spec)), np.asarray(opened.boundaries))
+
+
 def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: corpus_stage.KeySet, spec: dict, config: BuildConfig) -> dict[str, np.ndarray]:
     """Feature matrices of all members, the light training sample, the validation and check keys
     and the heavy keys."""
@@ -311,8 +319,9 @@ def verify_package(run_chunks: ChunkMap, path: Path, corpus, config: BuildConfig
     answers = map_parts(run_chunks, answer_chunk, every_path, config.compute.chunk_keys, path, True)
     parts = {"heavy": corpus.heavy.keys, "heldout": corpus.heldout.keys}
     served = map_parts(run_chunks, answer_chunk, parts, config.compute.chunk_keys, path, False)
+    regions = map_parts(run_chunks, region_chunk, {"heldout": corpus.heldout.keys}, config.compute.chunk_keys, path)["heldout"]
     return verify.verification(answers["members"], answers["sample"], served["heavy"], served["heldout"],
-                               verify.strata_of(corpus), config.gate.confidence)
+                               verify.strata_of(corpus), config.gate.confidence, regions, len(open_filter(path).boundaries) + 1)
 
 
 @_stage("drift")

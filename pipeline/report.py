@@ -29,7 +29,9 @@ def settings_of(config: BuildConfig) -> dict:
     return plain(dataclasses.asdict(config))
 
 
-def _region_rows(plan, filters) -> list[dict]:
+def _region_rows(plan, filters, planned: list[float], measured) -> list[dict]:
+    """One row a region: its plan, its filter, its rate as built for random keys (`planned_fpr`)
+    and as measured on its held-out light keys (`measured_fpr`, of `measured_keys` keys)."""
     bounds = [None, *(int(b) for b in plan.boundaries), None]
     return [
         {
@@ -43,6 +45,9 @@ def _region_rows(plan, filters) -> list[dict]:
             "width": region.width if region.mode == "fuse" else None,
             "hashes": region.hashes if region.mode in ("bloom", "fuse") else None,
             "filter_bytes": region.nbytes,
+            "planned_fpr": planned[i],
+            "measured_fpr": measured[i].fpr if measured else None,
+            "measured_keys": measured[i].keys if measured else None,
         }
         for i, region in enumerate(filters)
     ]
@@ -119,7 +124,7 @@ def build_report(
         },
         "separation": {"kl_bits": plan.kl_bits, "auc": choice.auc},
         "model": {"trees": choice.trees, "params": choice.params, "candidates": choice.candidates},
-        "regions": _region_rows(plan, filters),
+        "regions": _region_rows(plan, filters, settled.rates, verification.by_region),
         "expected_fpr": plan.expected_fpr,
         "plan": settled.as_report(),
         "drift": drift.as_report(),

@@ -299,9 +299,15 @@ def gate_rows(report: dict) -> list[list[str]]:
 def region_rows(regions: Sequence[dict]) -> list[list[object]]:
     return [
         [f"R{i}", "-inf" if r["score_from"] is None else r["score_from"], "+inf" if r["score_to"] is None else r["score_to"],
-         f"{r['members']:,}", f"{r['nonmember_share']:.4%}", f"{r['fpr']:.4%}", kind_label(r), f"{r['filter_bytes']:,}"]
+         f"{r['members']:,}", f"{r['nonmember_share']:.4%}", f"{r['fpr']:.4%}", kind_label(r), f"{r['filter_bytes']:,}",
+         _optional_percent(r.get("planned_fpr")), _optional_percent(r.get("measured_fpr")),
+         "-" if r.get("measured_keys") is None else f"{r['measured_keys']:,}"]
         for i, r in enumerate(regions)
     ]
+
+
+def _optional_percent(value: float | None) -> str:
+    return "-" if value is None else f"{value:.4%}"
 
 
 def drift_rows(drift: dict, report: dict) -> list[tuple[str, object]]:
@@ -438,7 +444,8 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         *_figure_html(figures, "score distributions"),
         "<h2>Regions</h2>",
         *_figure_html(figures, "region budgets and filter sizes"),
-        _table(["region", "scores from", "to", "members", "non-member share", "budget", "filter", "filter bytes"],
+        _table(["region", "scores from", "to", "members", "non-member share", "budget", "filter", "filter bytes",
+                "rate as built", "rate measured", "held-out keys"],
                region_rows(report["regions"])),
         "<h2>Size</h2>",
         *_figure_html(figures, "size against a plain Bloom filter and the lower bound"),

@@ -395,22 +395,51 @@ def _differing(answers: np.ndarray) -> int:
 
 @dataclass(frozen=True)
 class Verification:
+    """`by_region`: per region, the held-out light keys there, their lookups and the lookups
+    answered "maybe" (`RegionMeasurement`), when the regions of the held-out keys were given."""
+
     false_negatives: int
     members_checked: int
     heldout: Measurement
     paths: PathAgreement
+    by_region: tuple[RegionMeasurement, ...] = ()
+
+
+@dataclass(frozen=True)
+class RegionMeasurement:
+    """One region's held-out light keys: how many, their lookups, and the lookups answered "maybe"."""
+
+    keys: int
+    lookups: int
+    false_positive_lookups: int
+
+    @property
+    def fpr(self) -> float | None:
+        return self.false_positive_lookups / self.lookups if self.lookups else None
+
+
+def by_region(heldout_answers: np.ndarray, heldout_regions: np.ndarray, counts: np.ndarray, regions: int) -> tuple[RegionMeasurement, ...]:
+    """Each region's held-out keys, lookups and lookups answered maybe."""
+    keys = np.bincount(heldout_regions, minlength=regions)
+    lookups = np.bincount(heldout_regions, weights=counts, minlength=regions)
+    hits = np.bincount(heldout_regions, weights=counts * heldout_answers, minlength=regions)
+    return tuple(RegionMeasurement(int(k), int(n), int(h)) for k, n, h in zip(keys, lookups, hits))
 
 
 def verification(member_answers: np.ndarray, sample_answers: np.ndarray, heavy_answers: np.ndarray,
-                 heldout_answers: np.ndarray, strata: Strata, confidence: float) -> Verification:
+                 heldout_answers: np.ndarray, strata: Strata, confidence: float,
+                 heldout_regions: np.ndarray | None = None, regions: int = 0) -> Verification:
     """The verdict on a filter from its answers: to every member and to a sample of held-out keys
     through every answer path ((keys, paths), `every_path_answers`), and to every heavy key and
     every held-out light key through the service's path. A member is a false negative when any
-    path answers it "no"."""
+    path answers it "no". With `heldout_regions` (each held-out key's region of `regions`), the
+    held-out rate is also measured region by region."""
     false_negatives = int(len(member_answers) - np.count_nonzero(member_answers.all(axis=1)))
     paths = PathAgreement(answer_paths(), len(member_answers), len(sample_answers),
                           _differing(member_answers), _differing(sample_answers))
-    return Verification(false_negatives, len(member_answers), measure(heavy_answers, heldout_answers, strata, confidence), paths)
+    regional = () if heldout_regions is None else by_region(heldout_answers, heldout_regions, strata.heldout_counts, regions)
+    return Verification(false_negatives, len(member_answers), measure(heavy_answers, heldout_answers, strata, confidence), paths,
+                        regional)
 
 
 def check_filter(loaded: MembershipFilter, corpus: Corpus, confidence: float) -> Verification:

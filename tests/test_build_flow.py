@@ -194,3 +194,21 @@ def test_a_held_out_part_too_small_for_the_target_stops_before_training(corpus_f
     assert err.count("\n") == 1 and err.startswith("tamis: min_heldout: the tail (keys looked up fewer than tau = 44 times) has ")
     assert "held-out tail lookups" in err and "times as much log" in err
     assert _store_entries(tmp_path / "store") == []
+
+
+def test_each_region_reports_its_rate_as_built_beside_its_measured_rate(published):
+    # Held-out light keys are random keys to a region's filter, so each region's lookup-weighted
+    # measured rate is a weighted binomial mean around the rate as built: variance
+    # p (1 - p) sum c^2 / (sum c)^2 <= p (1 - p) tau / lookups, as every light count is below tau.
+    # 5 standard deviations (normal tail, common practice).
+    outcome, _ = published
+    tau = outcome.report["strata"]["tau"]
+    rows = outcome.report["regions"]
+    assert sum(row["measured_keys"] for row in rows) == outcome.report["corpus"]["split"]["heldout"]
+    for row in rows:
+        planned, measured = row["planned_fpr"], row["measured_fpr"]
+        assert planned == {"yes": 1.0, "no": 0.0}.get(row["mode"], planned)
+        if measured is None:
+            continue
+        lookups = row["measured_keys"]  # at least the keys' count of lookups (every count >= 1)
+        assert abs(measured - planned) <= 5 * math.sqrt(planned * (1 - planned) * tau / lookups) + 1e-12
