@@ -46,7 +46,7 @@ PLAN_ROUNDS = 4
 # gate's refusal says by how much it missed).
 MAX_PLAN_ROUNDS = 8
 # A plan whose estimate is within its allowance and above (1 - PLAN_CLOSE) of it is close enough.
-PLAN_CLOSE = 0.01
+PLAN_CLOSE = 0.02
 # When the heavy keys alone leave no room, the next plan is made at this share of the last rate.
 PLAN_SHRINK = 0.5
 

@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from tamis.artifact import write_atomically
+from tamis.sizing import BLOOM_OVERHEAD
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -351,7 +352,7 @@ TERMS = (
                          "their number; with counts the rate is by lookups, and a few heavy keys weigh like few "
                          "draws: Kish's (sum of counts)^2 / sum of squared counts. The upper bound is computed on it."),
     ("lower bound", "n log2(1/F) bits for n members at rate F: the fewest bytes any filter without a model can "
-                    "take (a plain Bloom filter needs about 1.44 times that). A learned filter may go below it, "
+                    f"take (a plain Bloom filter needs about {BLOOM_OVERHEAD:.2f} times that). A learned filter may go below it, "
                     "because its model already tells most non-members from members; when the artifact is above "
                     "it, the model did not earn that much."),
 )
@@ -450,7 +451,7 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         "<h2>Size</h2>",
         *_figure_html(figures, "size against a plain Bloom filter and the lower bound"),
         "<p>The lower bound is the fewest bytes any filter without a model can take for these members at the "
-        "target, n log2(1/F) bits; a plain Bloom filter needs about 1.44 times that. The learned artifact beats "
+        f"target, n log2(1/F) bits; a plain Bloom filter needs about {BLOOM_OVERHEAD:.2f} times that. The learned artifact beats "
         "it only as far as its model tells non-members from members.</p>",
         "<h2>Drift of the version in service</h2>",
         _pairs(drift_rows(drift, report)),

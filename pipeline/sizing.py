@@ -19,6 +19,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+import numpy as np
+
 LN2 = math.log(2.0)
 
 # A Bloom filter sized optimally needs 1/ln 2 = 1.4427 times the information-theoretic lower bound
@@ -50,9 +52,21 @@ def bloom_bits(n: int, fpr: float) -> int:
     """
     if not 0.0 < fpr:
         raise ValueError(f"false-positive rate must be > 0, got {fpr}")
-    if n == 0 or fpr >= 1.0:
-        return 0
-    return max(1, math.ceil(-n * math.log(fpr) / (LN2 * LN2)))
+    return int(bloom_bits_of(np.array([n]), np.array([fpr]))[0])
+
+
+def bloom_bits_of(n: np.ndarray, fpr: np.ndarray) -> np.ndarray:
+    """`bloom_bits` elementwise (float64 results): at least 1 bit for n > 0, none for n = 0 or f >= 1."""
+    n = np.asarray(n, dtype=np.float64)
+    with np.errstate(divide="ignore"):
+        bits = np.maximum(1.0, np.ceil(n * -np.log(fpr) / (LN2 * LN2)))
+    return np.where((n > 0) & (np.asarray(fpr) < 1.0), bits, 0.0)
+
+
+def bloom_bytes_per_nat(n):
+    """The bytes n ln(1/f) / (8 (ln 2)^2) of an optimal Bloom filter grow by this for each nat of
+    ln(1/f): n / (8 (ln 2)^2), 0.26 bytes a key (the region plan's continuous Bloom price)."""
+    return n / (8 * LN2 * LN2)
 
 
 def bloom_hashes(m: int, n: int) -> int:

@@ -7,7 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from tamis.bloom import BloomFilter, bloom_bits, bloom_fpr, bloom_hashes
+from tamis.bloom import BloomFilter
+from tamis.sizing import bloom_bits, bloom_fpr, bloom_hashes
 from tamis.budgets import FilterChoice
 from tamis.filters import build_filters, chunk_words, empty_filters, merge_words
 from tamis.sizing import bloom_shape
