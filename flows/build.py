@@ -207,7 +207,7 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
     def filter_bytes(member_scores, val_scores, val_weights) -> float:
         # fit_model prices every checkpoint of every candidate here: count them as progress
         nonlocal priced
-        cost = plan_regions(member_scores, val_scores, val_weights, aim, config.regions).estimated_total_bits / 8
+        cost = plan_regions(member_scores, val_scores, val_weights, aim, config.regions, refine=False).estimated_total_bits / 8
         priced += 1
         step(priced, None, "checkpoints priced", "")
         return cost

@@ -521,3 +521,19 @@ def test_plan_regions_rejects_bad_input():
         RegionSettings(max_regions=0)
     with pytest.raises(ValueError, match="segments"):
         RegionSettings(segments=2.5)
+
+
+@pytest.mark.parametrize("target", [0.05, 0.01, 0.001])
+def test_boundaries_moved_by_real_bytes_never_cost_more(target):
+    # The local search starts from the divergence-maximising plan and keeps only cheaper ones, so
+    # its plan never costs more, and still meets the target on the plan's shares.
+    rng = np.random.default_rng(int(1 / target))
+    members = (rng.normal(2.0, 1.0, 20_000) * 1000).astype(np.int64)
+    nonmembers = (rng.normal(0.0, 1.0, 50_000) * 1000).astype(np.int64)
+    weights = rng.integers(1, 40, nonmembers.size).astype(np.float64)
+    settings = RegionSettings(segments=200)
+    first = plan_regions(members, nonmembers, weights, target, settings, refine=False)
+    moved = plan_regions(members, nonmembers, weights, target, settings)
+    assert moved.estimated_total_bits <= first.estimated_total_bits
+    assert moved.expected_fpr <= target
+    assert moved.member_counts.sum() == members.size
