@@ -502,6 +502,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None) -> BuildOu
                 comparison=comparison,
                 published_plain=chosen is plain,
                 settled=chosen.settled,
+                plain_settled=plain.settled,
                 version=next_version if passed else None,
                 timings=stages.timings,
             )

@@ -69,6 +69,7 @@ def build_report(
     comparison: PlainComparison,
     published_plain: bool,
     settled: SettledPlan,
+    plain_settled: SettledPlan,
     version: int | None,
     timings: dict,
 ) -> dict:
@@ -128,7 +129,8 @@ def build_report(
         "expected_fpr": plan.expected_fpr,
         "plan": settled.as_report(),
         "drift": drift.as_report(),
-        "plain_filter": comparison.as_report(config.gate.when_model_does_not_pay, published_plain),
+        "plain_filter": {**comparison.as_report(config.gate.when_model_does_not_pay, published_plain),
+                         "plan": plain_settled.as_report()},
         "gate": {"passed": not reasons, "reasons": reasons, "checks": [check.as_report() for check in checks]},
         "timings": timings,
     }

@@ -162,27 +162,6 @@ def built_bloom_fpr(words, bits: int, probes: int) -> float:
     return passing / (bits * bits)
 
 
-def sized_fpr(n: int, fpr: float) -> float:
-    """The rate expected, before it is built, of the filter `bloom_shape` sizes for n keys at budget
-    fpr: the formula `bloom_fpr` plus the same-pair keys' n / m^2 (the built filter's rate is then
-    exact, `built_bloom_fpr`).
-
-    Whole bits and a whole number of probes put it a little above the budget: 1.0039% for 1%,
-    1.0054% at 5%, 1.0076% at 1.1% (k = 7 where 6.5 would be optimal). Budgets of 1 or more and
-    empty filters keep their budget (a "yes" region answers every key, a "no" region none).
-    """
-    if n == 0 or fpr >= 1.0:
-        return min(fpr, 1.0)
-    bits, hashes = bloom_shape(n, fpr)
-    return bloom_fpr(bits, n, hashes) + n / (bits * bits)
-
-
-def sized_rate(kind: str, n: int, fpr: float) -> float:
-    """The formula rate of the filter the filters stage builds for a region of n members given
-    kind and budget: a fuse filter's 2^-r is its budget exactly; a Bloom filter's is `sized_fpr`."""
-    return sized_fpr(n, fpr) if kind == "bloom" else min(fpr, 1.0)
-
-
 def bloom_bytes(n: int, fpr: float) -> int:
     """Stored bytes of the Bloom filter `tamis.filters` builds (`bloom_shape`): its bits in whole 64-bit words.
 
