@@ -115,8 +115,11 @@ def one_case(case: str) -> dict:
 
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("cases", nargs="*", choices=CASES, default=list(CASES))
+    parser.add_argument("cases", nargs="*", metavar="CASE", help=f"any of {', '.join(CASES)} (default: every case)")
     args = parser.parse_args(argv)
+    if unknown := sorted(set(args.cases) - set(CASES)):
+        parser.error(f"unknown cases {unknown}; choose from {', '.join(CASES)}")
+    args.cases = args.cases or list(CASES)
     print(f"{time.strftime('%Y-%m-%d %H:%M')}: benchmarks/plan_figures.py {' '.join(args.cases)}")
     for case in args.cases:
         one_case(case)

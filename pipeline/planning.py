@@ -11,8 +11,10 @@ exactly once the filters are built. `settle_plan` therefore plans, builds, and e
 with the tail rate the check keys' lookup-weighted mean of their regions' rates (T the tail's
 lookups, L all lookups). The estimate is held against the allowance for that very heavy outcome
 (`tamis.verify.tail_allowance`: the same chance of passing the gate as the aim promises, with the
-heavy keys' luck already spent), and the plan is made again at its rate x allowed / estimate
-until it lands within PLAN_CLOSE under the allowance, at most PLAN_ROUNDS plans (MAX_PLAN_ROUNDS
+heavy keys' luck already spent), and the plan is made again at its rate times the factor by which
+this outcome, heavy and tail together, could grow and still pass (`tamis.verify.outcome_headroom`:
+the heavy stratum carries the rate on some corpora, the tail on others) until it fits with less
+than PLAN_CLOSE of room, at most PLAN_ROUNDS plans (MAX_PLAN_ROUNDS
 while none fits). Of the plans
 whose estimate is within their allowance, the one with the fewest bytes is built; a plan above its
 allowance is never chosen while one within it exists. The check keys took no part in the model's
@@ -45,9 +47,9 @@ PLAN_ROUNDS = 4
 # ... and while none of them fits its allowance, up to this many (then the last is built, and the
 # gate's refusal says by how much it missed).
 MAX_PLAN_ROUNDS = 8
-# A plan whose estimate is within its allowance and above (1 - PLAN_CLOSE) of it is close enough.
+# A plan within its allowance whose outcome could grow by less than this share is close enough.
 PLAN_CLOSE = 0.02
-# When the heavy keys alone leave no room, the next plan is made at this share of the last rate.
+# The next plan is made at no less than this share of the last one's rate.
 PLAN_SHRINK = 0.5
 
 
@@ -172,13 +174,16 @@ def settle_plan(scores: PlanScores, corpus: corpus_stage.Corpus, aim: float, con
         rounds.append(PlanRound(rate, estimate, allowed, plan_bytes(plan, filters, config)))
         built.append((plan, filters, sparing, rates.tolist()))
         this = rounds[-1]
-        if this.fits and this.estimate >= (1 - PLAN_CLOSE) * this.allowed or this.estimate == 0:
+        # the factor by which this outcome, heavy and tail grown together, could grow and still pass
+        headroom = verify.outcome_headroom(config.target.fpr, strata, corpus.check.counts, config.gate.confidence,
+                                           config.gate.aim_sigmas, heavy_fp, tail)
+        if this.fits and headroom < 1 + PLAN_CLOSE or this.estimate == 0:
             break
         if len(rounds) >= MAX_PLAN_ROUNDS or len(rounds) >= PLAN_ROUNDS and any(r.fits for r in rounds):
             break
-        # aim half of PLAN_CLOSE under the allowance, so that a plan landing near it still fits
-        step = this.allowed * (1 - PLAN_CLOSE / 2) / this.estimate if this.allowed is not None else PLAN_SHRINK
-        rate = min(rate * step, MAX_PLANNED_RATE)
+        # the next plan where this outcome would just pass (half of PLAN_CLOSE under, so that a plan
+        # landing near it still fits)
+        rate = min(rate * max(headroom * (1 - PLAN_CLOSE / 2), PLAN_SHRINK), MAX_PLANNED_RATE)
     fitting = [i for i, r in enumerate(rounds) if r.fits]
     chosen = min(fitting, key=lambda i: (rounds[i].bytes, i)) if fitting else len(rounds) - 1
     plan, filters, sparing, rates = built[chosen]

@@ -282,6 +282,24 @@ def tail_allowance(
     return _largest_passing(passes, 1.0)
 
 
+def outcome_headroom(
+    target: float, strata: Strata, check_counts: np.ndarray, confidence: float, aim_sigmas: float, heavy_fp_lookups: float,
+    tail_rate: float,
+) -> float:
+    """The largest factor s by which a built outcome (heavy false-positive lookups, tail rate) could
+    grow, both together, and still pass as `tail_allowance` reckons: where the next plan should be
+    made, relative to this one, whichever stratum carries the rate (up to 2^20)."""
+    tail_unit = _gate_unit(strata) - strata.heavy_lookups
+    plan_unit = _plan_unit(strata, check_counts)
+
+    def passes(scale: float) -> bool:
+        heavy, tail = scale * heavy_fp_lookups, min(scale * tail_rate, 1.0)
+        expected = heavy + tail * strata.tail_lookups
+        return _unlucky_bound(expected, heavy + tail * tail_unit, tail * plan_unit, 0.0, aim_sigmas, strata, confidence) <= target
+
+    return _largest_passing(passes, float(1 << 20))
+
+
 def _gate_unit(strata: Strata) -> float:
     """The gate's variance per unit of rate: heavy lookups (Poisson) plus the held-out tail's
     weights, sum of held-out c^2 / s^2."""

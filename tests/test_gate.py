@@ -18,6 +18,8 @@ from tamis.verify import (
     Verification,
     gate_checks,
     needed_heldout_lookups,
+    outcome_headroom,
+    tail_allowance,
     publishes_plain,
     refusal_reasons,
     require_heldout,
@@ -209,3 +211,20 @@ def test_model_pays_compares_with_the_plain_filter(learned, policy, passed, plai
     assert publishes_plain(comparison, policy) is plain_published
     if not passed:
         assert refusal_reasons(found) == [f"model_pays: {rule.detail}"]
+
+
+def test_the_tail_allowance_and_the_headroom_of_a_built_outcome_agree():
+    # A window of 1,000,000 lookups: 100 heavy keys of 5,000 lookups, a tail of 500,000 lookups
+    # sampled by 50,000 held-out and 20,000 check keys of 1 to 43 lookups.
+    rng = np.random.default_rng(5)
+    strata = Strata(tau=44, lookups=1_000_000, heavy_counts=np.full(100, 5000), tail_lookups=500_000, tail_max_count=43,
+                    heldout_counts=rng.integers(1, 44, 50_000))
+    check = rng.integers(1, 44, 20_000)
+    heavy_fp, tail = 2_000.0, 0.004
+    scale = outcome_headroom(TARGET, strata, check, 0.95, 2.0, heavy_fp, tail)
+    assert scale > 1  # 0.6% expected against a 1% target: room to grow
+    # grown by that factor, the outcome sits on the allowance for its heavy part
+    assert tail_allowance(TARGET, strata, check, 0.95, 2.0, heavy_fp * scale) == pytest.approx(tail * scale, rel=1e-6)
+    # more heavy false positives leave less room for the tail, and too many leave none
+    assert tail_allowance(TARGET, strata, check, 0.95, 2.0, 4 * heavy_fp) < tail_allowance(TARGET, strata, check, 0.95, 2.0, heavy_fp)
+    assert tail_allowance(TARGET, strata, check, 0.95, 2.0, 0.02 * strata.lookups) is None
