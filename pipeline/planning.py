@@ -24,6 +24,7 @@ nothing here.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -182,9 +183,21 @@ def settle_plan(scores: PlanScores, corpus: corpus_stage.Corpus, aim: float, con
         if len(rounds) >= MAX_PLAN_ROUNDS or len(rounds) >= PLAN_ROUNDS and any(r.fits for r in rounds):
             break
         # the next plan where this outcome would just pass (half of PLAN_CLOSE under, so that a plan
-        # landing near it still fits)
-        rate = min(rate * max(headroom * (1 - PLAN_CLOSE / 2), PLAN_SHRINK), MAX_PLANNED_RATE)
+        # landing near it still fits), kept strictly between the largest rate that fitted and the
+        # smallest that did not (their geometric mean when it would leave that bracket)
+        rate = _next_rate(rate * max(headroom * (1 - PLAN_CLOSE / 2), PLAN_SHRINK), rounds)
     fitting = [i for i, r in enumerate(rounds) if r.fits]
     chosen = min(fitting, key=lambda i: (rounds[i].bytes, i)) if fitting else len(rounds) - 1
     plan, filters, sparing, rates = built[chosen]
     return SettledPlan(plan, filters, sparing, rates, rounds, chosen)
+
+
+def _next_rate(proposed: float, rounds: list[PlanRound]) -> float:
+    """`proposed`, or the geometric mean of the bracket the rounds so far set when it falls outside:
+    the largest rate whose plan fitted and the smallest whose plan did not (plans move in steps,
+    so a rate between two tried ones is the one left to try)."""
+    low = max((r.rate for r in rounds if r.fits), default=0.0)
+    high = min((r.rate for r in rounds if not r.fits and r.rate > low), default=MAX_PLANNED_RATE)
+    if low < proposed < high:
+        return proposed
+    return math.sqrt(low * high) if low > 0 else min(proposed, high * PLAN_SHRINK)

@@ -4,8 +4,10 @@ Kinds: Bloom filters (`tamis.bloom`) and binary fuse filters (`tamis.fuse`). The
 each region with `filter_bytes`, the bytes a region's filter really adds to the artifact: its
 stored words, the alignment padding of its section, and its section-table and header entries.
 
-These formulas are estimates: they size filters and drive the region plan. The false-positive rate
-a user is promised is always the one measured on held-out non-members (see `tamis.verify`).
+The sizes are those built. The rates: a built Bloom filter's for random keys is counted exactly
+over its probe pairs (`built_bloom_fpr`), a fuse filter's is 2^-r; the textbook Bloom formula
+(`bloom_fpr`) prices budgets before anything is built. The false-positive rate a user is promised
+is always the one measured on held-out non-members (see `tamis.verify`).
 
 Sources. B. H. Bloom, "Space/time trade-offs in hash coding with allowable errors", CACM 13(7),
 1970, and the standard analysis that follows it. T. M. Graf and D. Lemire, "Binary Fuse Filters:
