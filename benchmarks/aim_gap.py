@@ -36,7 +36,8 @@ from tamis import verify
 from tamis.config import load_config, with_overrides
 from tamis.demo import write_demo_corpus
 from tamis.features import default_feature_spec, featurize
-from tamis.flows.build import choose_regions, extract_features, fill_filters, read_corpus, run_in_process, train_model, training_keys
+from tamis.flows.build import extract_features, read_corpus, run_in_process, score_plan_keys, settle, train_model
+from tamis.planning import training_keys
 from tamis.regions import region_of
 from tamis.trees import score_batch
 
@@ -73,8 +74,8 @@ def one_build(members: Path, non_members: Path, split_seed: int, target: float) 
     train = training_keys(corpus, config)
     X = extract_features(run_in_process, corpus, train, spec, config)
     choice = train_model.fn(corpus, train, X, aim, config, quiet)
-    plan, scores, _ = choose_regions(run_in_process, corpus, X, choice.forest, aim, config)
-    filters = fill_filters(run_in_process, corpus, scores.member_scores, plan, config)  # no heavy keys: nothing to spare
+    settled = settle(run_in_process, corpus, score_plan_keys(run_in_process, corpus, X, choice.forest, config), aim, config)
+    plan, filters = settled.plan, settled.filters  # no heavy keys: nothing to spare
 
     heldout_scores = score_batch(choice.forest, featurize(corpus.heldout.keys, spec))
     regions = region_of(heldout_scores, plan.boundaries)

@@ -83,17 +83,18 @@ import numpy as np
 import polars as pl
 
 from tamis.flows.build import (
-    choose_regions,
     extract_features,
     fill_filters,
-    spare_filters,
     read_corpus,
     run_in_process,
+    score_plan_keys,
+    settle,
     train_model,
-    training_keys,
     verify_package,
     write_package,
 )
+from tamis.planning import spare_filters, training_keys
+from tamis.report_page import ScoreSample
 from tamis import verify
 from tamis.baselines import StaticFilter, best_static_filter, clamped_ideal_bytes, ideal_bytes, plan_single_threshold
 from tamis.bloom import BloomFilter, KeyHashes, hash_keys, word_count
@@ -279,7 +280,7 @@ def build_artifact(prepared: Prepared, path: Path, forest, plan, member_scores, 
     """The filters of a plan (anything with `boundaries` and `fprs`), packaged with the forest."""
     seed = prepared.config.filters.hash_seed
     sparing = spare_filters(prepared.corpus, member_scores, probe_scores[: prepared.heavy], plan, prepared.config)
-    filters = fill_filters(run_in_process, prepared.corpus, member_scores, plan, prepared.config, sparing.filters)
+    filters = fill_filters(run_in_process, prepared.corpus, member_scores, prepared.config, plan, sparing.filters)
     write_package.fn(path, prepared.spec, forest, plan, filters, seed, {"benchmark": path.stem}, None)
     return Built(path, filters, probe_answers(probe_scores, prepared, plan.boundaries, filters))
 
@@ -385,7 +386,9 @@ def compare_at(prepared: Prepared, target: float, folder: Path) -> TargetResult:
     aim = verify.aim_fpr(target, strata, corpus.check.counts, config.gate.confidence, config.gate.aim_sigmas, config.filters.variants)
     started = time.perf_counter()
     choice = train_model.fn(corpus, prepared.train, prepared.features, aim, config, quiet)
-    plan, scores, _ = choose_regions(run_in_process, corpus, prepared.features, choice.forest, aim, config)
+    plan_scores = score_plan_keys(run_in_process, corpus, prepared.features, choice.forest, config)
+    plan = settle(run_in_process, corpus, plan_scores, aim, config).plan
+    scores = ScoreSample(plan_scores.members, plan_scores.nonmembers, plan_scores.weights)
     probe_scores = score_batch(choice.forest, prepared.probe_features)
     build = functools.partial(
         build_artifact, prepared, forest=choice.forest, member_scores=scores.member_scores, probe_scores=probe_scores

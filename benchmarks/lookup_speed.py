@@ -41,7 +41,8 @@ import numpy as np
 import xxhash
 
 from tamis import compiled
-from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes
+from tamis.bloom import BloomFilter
+from tamis.sizing import bloom_bits, bloom_hashes
 from tamis.config import load_config
 from tamis.corpus import load_corpus
 from tamis.demo import write_demo_corpus

@@ -48,7 +48,7 @@ print(json.dumps({"open_s": opened, "open_rss": after_open - before, "batch_s": 
 def write_scaled(path: Path, members: int, fpr: float) -> int:
     """The reference artifact with one Bloom region sized for `members` at `fpr`; returns its bytes."""
     from tamis.artifact import read_artifact, write_artifact
-    from tamis.bloom import bloom_bits, bloom_hashes
+    from tamis.sizing import bloom_bits, bloom_hashes
 
     header, sections = read_artifact(REFERENCE)
     bits = bloom_bits(members, fpr)

@@ -24,7 +24,7 @@ import time
 
 import numpy as np
 
-from tamis.bloom import bloom_bits
+from tamis.sizing import bloom_bits
 from tamis.regions import (
     RegionSettings,
     best_partitions,

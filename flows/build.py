@@ -44,21 +44,17 @@ from tamis.config import BuildConfig, require_paths
 from tamis.drift import Drift, measure_drift
 from tamis.errors import BadInput
 from tamis.features import default_feature_spec, featurize
-from tamis.hot_keys import Sparing, spare_heavy_keys
-from tamis.filters import RegionFilter, chunk_words, empty_filters, merge_words
+from tamis.filters import RegionFilter, chunk_words, merge_words
 from tamis.loader import open_filter
 from tamis.model import ModelChoice, fit_model, fit_model_on_cluster
 from tamis.package import package_artifact
+from tamis.planning import PlanScores, SettledPlan, settle_plan, training_keys
 from tamis.progress import Progress, StageEvent, no_progress
 from tamis.provenance import build_provenance
 from tamis.query import region_of
 from tamis.regions import RegionPlan, plan_regions
 from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
-from tamis.sizing import sized_rate
 from tamis.trees import Forest, score_batch
-
-# The largest rate the corrected plan may be made for (plan_regions takes rates below 1).
-MAX_PLANNED_RATE = 0.5
 
 STAGES = ("corpus", "features", "model", "regions", "filters", "plain", "package", "verify", "drift", "report", "publish")
 
@@ -187,6 +183,14 @@ def answer_chunk(chunk: Chunk, path: Path, every_path: bool) -> np.ndarray:
     return verify.every_path_answers(opened, chunk.items) if every_path else opened.contains_many(chunk.items)
 
 
+@_stage("held-out regions")
+def region_chunk(chunk: Chunk, path: Path) -> np.ndarray:
+    """The region of each key of one chunk in the artifact at `path`: its features scored by the
+    artifact's own forest (for the report's per-region rates; no choice depends on them)."""
+    opened = open_filter(path)
+    return region_of(score_batch(opened.forest, featurize(chunk.items, opened.feature_spec)), np.asarray(opened.boundaries))
+
+
 def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: corpus_stage.KeySet, spec: dict, config: BuildConfig) -> dict[str, np.ndarray]:
     """Feature matrices of all members, the light training sample, the validation and check keys
     and the heavy keys."""
@@ -200,13 +204,6 @@ def extract_features(run_chunks: ChunkMap, corpus: corpus_stage.Corpus, train: c
     return map_parts(run_chunks, featurize_chunk, parts, config.compute.chunk_keys, spec)
 
 
-def training_keys(corpus: corpus_stage.Corpus, config: BuildConfig) -> corpus_stage.KeySet:
-    """The light training keys that train, with room left in model.train_nonmembers for every
-    heavy key (they all train, after these)."""
-    room = max(config.model.train_nonmembers - len(corpus.heavy.keys), 1)
-    return corpus_stage.sample_keys(corpus.train, room, config.model.seed)
-
-
 @_stage("model")
 def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config: BuildConfig, step: Step):
     priced = 0
@@ -214,7 +211,7 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
     def filter_bytes(member_scores, val_scores, val_weights) -> float:
         # fit_model prices every checkpoint of every candidate here: count them as progress
         nonlocal priced
-        cost = plan_regions(member_scores, val_scores, val_weights, aim, config.regions).estimated_total_bits / 8
+        cost = plan_regions(member_scores, val_scores, val_weights, aim, config.regions, refine=False).estimated_total_bits / 8
         priced += 1
         step(priced, None, "checkpoints priced", "")
         return cost
@@ -236,47 +233,20 @@ def train_model(corpus, train: corpus_stage.KeySet, X: dict, aim: float, config:
         return fit_model_on_cluster(client, *inputs)
 
 
-def choose_regions(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, aim: float, config: BuildConfig):
-    """Scores of the members, the validation, check and heavy keys, and the region plan they lead to.
-
-    The plan is fitted to the validation keys and the heavy keys (exact scores and weights). Fitted
-    shares flatter the plan that was chosen on them, so its rate is then estimated on the check
-    keys with each filter's rate as it will be sized (`verify.planned_rate`), and the plan is made
-    once more for aim x aim / that rate: what it was fitted to is scaled by the error measured.
-    """
+def score_plan_keys(run_chunks: ChunkMap, corpus, X: dict, forest: Forest, config: BuildConfig) -> PlanScores:
+    """The model's scores of the members and of the validation, check and heavy keys, chunk by chunk."""
     parts = {"members": X["members"], "validation": X["validation"], "check": X["check"], "heavy": X["heavy"]}
     scores = map_parts(run_chunks, score_chunk, parts, config.compute.chunk_keys, forest)
-    nonmember_scores = np.concatenate([scores["validation"], scores["heavy"]])
-    weights = corpus_stage.plan_weights(corpus)
-
-    def plan_for(rate: float):
-        plan = plan_regions(scores["members"], nonmember_scores, weights, rate, config.regions)
-        sized = [sized_rate(c.kind, int(n), c.fpr) for n, c in zip(plan.member_counts, plan.filters)]
-        at = partial(region_of, boundaries=plan.boundaries)
-        estimate = verify.planned_rate(sized, at(scores["heavy"]), at(scores["check"]), verify.strata_of(corpus), corpus.check.counts)
-        return plan, estimate
-
-    first, estimate = plan_for(aim)
-    plan = plan_for(min(aim * aim / estimate, MAX_PLANNED_RATE))[0] if estimate > 0 else first
-    return plan, ScoreSample(scores["members"], nonmember_scores, weights), scores["heavy"]
+    return PlanScores(scores["members"], scores["validation"], scores["check"], scores["heavy"], corpus_stage.plan_weights(corpus))
 
 
-def spare_filters(corpus, member_scores: np.ndarray, heavy_scores: np.ndarray, plan, config: BuildConfig) -> Sparing:
-    """The region filters, bits still clear, in the variants that answer the fewest heavy lookups
-    maybe (`tamis.hot_keys`)."""
-    regions = region_of(member_scores, plan.boundaries)
-    seed = config.filters.hash_seed
-    return spare_heavy_keys(empty_filters(regions, plan.filters, seed), corpus.members, regions, corpus.heavy.keys,
-                            corpus.heavy.counts, region_of(heavy_scores, plan.boundaries), seed, config.filters.variants)
-
-
-def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, config: BuildConfig,
-                 empty: list[RegionFilter] | None = None) -> list[RegionFilter]:
+def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, config: BuildConfig, plan,
+                 empty: list[RegionFilter]) -> list[RegionFilter]:
     """One filter per region holding exactly its members: the parts of each chunk of members merged
-    into `empty` (the plan's filters, holding no member yet, when none are given): Bloom bits ORed,
-    fuse filters solved from all their members' hashes."""
+    into `empty` (the plan's filters, holding no member yet): Bloom bits ORed, fuse filters solved
+    from all their members' hashes."""
     regions = region_of(member_scores, plan.boundaries)
-    filters = empty if empty is not None else empty_filters(regions, plan.filters, config.filters.hash_seed)
+    filters = empty
     size = config.compute.chunk_keys
     chunks = [Chunk(keys, part) for keys, part in zip(chunks_of(corpus.members, size), chunks_of(regions, size))]
     words = run_chunks(fill_chunk, chunks, filters, config.filters.hash_seed)
@@ -285,30 +255,44 @@ def fill_filters(run_chunks: ChunkMap, corpus, member_scores: np.ndarray, plan, 
 
 @dataclass(frozen=True)
 class Candidate:
-    """An artifact the build can publish: its model, its region plan, its filters (members inserted)
-    and the scores the plan was made from."""
+    """An artifact the build can publish: its model, its settled plan (filters built) and the scores
+    the plan was made from."""
 
     choice: ModelChoice
-    plan: RegionPlan
-    filters: list[RegionFilter]
+    settled: SettledPlan
     scores: ScoreSample
-    sparing: Sparing
+
+    @property
+    def plan(self) -> RegionPlan:
+        return self.settled.plan
+
+    @property
+    def filters(self) -> list[RegionFilter]:
+        return self.settled.filters
+
+
+def settle(run_chunks: ChunkMap, corpus, scores: PlanScores, aim: float, config: BuildConfig) -> SettledPlan:
+    """`tamis.planning.settle_plan` with each round's filters filled chunk by chunk."""
+    return settle_plan(scores, corpus, aim, config, partial(fill_filters, run_chunks, corpus, scores.members, config))
 
 
 def plain_candidate(run_chunks: ChunkMap, corpus, learned: Candidate, aim: float, config: BuildConfig) -> Candidate:
     """The plain filter the learned artifact would replace: a forest of no trees (every key gets the
-    same score) and so one region holding every member, planned at the same aim, so that it would
-    be certified the same way. The region plan and the filter stage choose its filter as they
-    would for any region, and the same loader answers it."""
+    same score) and so one region holding every member, planned and settled at the same aim, so
+    that it would be certified the same way. The region plan and the filter stage choose its filter
+    as they would for any region, and the same loader answers it."""
     forest = compile_trees([], learned.choice.forest.features)
-    member_scores = np.full(len(corpus.members), forest.bias, dtype=np.int64)
-    validation_scores = np.full(len(corpus.validation.keys), forest.bias, dtype=np.int64)
-    plan = plan_regions(member_scores, validation_scores, corpus.validation.counts, aim, config.regions)
-    sparing = spare_filters(corpus, member_scores, np.full(len(corpus.heavy.keys), forest.bias, dtype=np.int64), plan, config)
-    filters = fill_filters(run_chunks, corpus, member_scores, plan, config, sparing.filters)
+
+    def same(count: int) -> np.ndarray:
+        return np.full(count, forest.bias, dtype=np.int64)
+
+    scores = PlanScores(same(len(corpus.members)), same(len(corpus.validation.keys)), same(len(corpus.check.keys)),
+                        same(len(corpus.heavy.keys)), corpus_stage.plan_weights(corpus))
+    settled = settle(run_chunks, corpus, scores, aim, config)
+    filters = settled.filters
     choice = replace(learned.choice, forest=forest, trees=0, auc=0.5, model_bytes=forest.nbytes,
                      filter_bytes=sum(f.nbytes for f in filters), total_bytes=forest.nbytes + sum(f.nbytes for f in filters))
-    return Candidate(choice, plan, filters, ScoreSample(member_scores, validation_scores, corpus.validation.counts), sparing)
+    return Candidate(choice, settled, ScoreSample(scores.members, scores.validation, corpus.validation.counts))
 
 
 def write_candidate(path: Path, spec: dict, candidate: Candidate, config: BuildConfig, provenance: dict) -> int:
@@ -339,8 +323,9 @@ def verify_package(run_chunks: ChunkMap, path: Path, corpus, config: BuildConfig
     answers = map_parts(run_chunks, answer_chunk, every_path, config.compute.chunk_keys, path, True)
     parts = {"heavy": corpus.heavy.keys, "heldout": corpus.heldout.keys}
     served = map_parts(run_chunks, answer_chunk, parts, config.compute.chunk_keys, path, False)
+    regions = map_parts(run_chunks, region_chunk, {"heldout": corpus.heldout.keys}, config.compute.chunk_keys, path)["heldout"]
     return verify.verification(answers["members"], answers["sample"], served["heavy"], served["heldout"],
-                               verify.strata_of(corpus), config.gate.confidence)
+                               verify.strata_of(corpus), config.gate.confidence, regions, len(open_filter(path).boundaries) + 1)
 
 
 @_stage("drift")
@@ -474,11 +459,11 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
         X = extract_features(stages.chunks("features"), corpus, train, spec, config)
     choice = stages.run("model", train_model, corpus, train, X, aim, config, stepped=True)
     with stages.stage("regions"):
-        plan, scores, heavy_scores = choose_regions(stages.chunks("regions"), corpus, X, choice.forest, aim, config)
+        plan_scores = score_plan_keys(stages.chunks("regions"), corpus, X, choice.forest, config)
     with stages.stage("filters"):
-        sparing = spare_filters(corpus, scores.member_scores, heavy_scores, plan, config)
-        filters = fill_filters(stages.chunks("filters"), corpus, scores.member_scores, plan, config, sparing.filters)
-    learned = Candidate(choice, plan, filters, scores, sparing)
+        settled = settle(stages.chunks("filters"), corpus, plan_scores, aim, config)
+    scores = ScoreSample(plan_scores.members, plan_scores.nonmembers, plan_scores.weights)
+    learned = Candidate(choice, settled, scores)
     with stages.stage("plain"):
         plain = plain_candidate(stages.chunks("plain"), corpus, learned, aim, config)
 
@@ -516,6 +501,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
                 settings=config.gate,
                 baseline=drift.baseline(),
                 comparison=comparison,
+                plan=verify.PlanFigures(aim, chosen.settled.estimate, chosen.settled.allowed),
             )
             older = None if replace_newer else folding.newer_inputs_reason(store, inputs, newest_at_start)
             passed = not verify.refusal_reasons(checks) and older is None
@@ -534,7 +520,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
                 drift=drift,
                 comparison=comparison,
                 published_plain=chosen is plain,
-                sparing=chosen.sparing,
+                settled=chosen.settled,
+                plain_settled=plain.settled,
                 version=next_version if passed else None,
                 timings=stages.timings,
             )

@@ -33,9 +33,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tamis.bloom import BLOOM_OVERHEAD, LN2, bloom_bits
 from tamis.budgets import FilterChoice, allocate_fprs
-from tamis.sizing import FUSE_ARITIES, FUSE_MAX_WIDTH, bloom_bytes, fuse_bytes
+from tamis.sizing import BLOOM_OVERHEAD, FUSE_ARITIES, FUSE_MAX_WIDTH, bloom_bits, bloom_bits_of, bloom_bytes, fuse_bytes
 
 
 @dataclass(frozen=True)
@@ -124,8 +123,7 @@ def plan_single_threshold(member_scores, nonmember_scores, nonmember_weights, ta
     below = np.searchsorted(np.sort(members), thresholds, side="left")
     feasible = above < target_fpr
     backup = np.where(feasible, (target_fpr - above) / np.where(feasible, 1.0 - above, 1.0), 1.0)
-    # bloom_bits of every candidate, vectorised: ceil(n ln(1/f) / (ln 2)^2), at least 1 bit, 0 for no members
-    bits = np.where(below > 0, np.maximum(1.0, np.ceil(below * -np.log(backup) / (LN2 * LN2))), 0.0)
+    bits = bloom_bits_of(below, backup)
     bits[~feasible] = np.inf
     pick = int(np.argmin(bits))
     share_above, backup_fpr, count = float(above[pick]), float(backup[pick]), int(below[pick])

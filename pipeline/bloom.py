@@ -15,9 +15,6 @@ import xxhash
 
 from tamis.format import MAX_BLOOM_BITS, MAX_BLOOM_HASHES, SEED_LIMIT, WORD_BITS
 
-# The sizing formulas live with every other kind's in tamis.sizing; importers of this module use them too.
-from tamis.sizing import BLOOM_OVERHEAD, LN2, bloom_bits, bloom_fpr, bloom_hashes, lower_bound_bits  # noqa: F401
-
 
 # ---------------------------------------------------------------------------------------------------
 # The bit-array structure.

@@ -37,7 +37,7 @@ from functools import cached_property
 
 import numpy as np
 
-from tamis.sizing import FUSE_ARITIES, FUSE_MAX_WIDTH, LN2, SECTION_BYTES, bloom_bytes, filter_bytes
+from tamis.sizing import FUSE_ARITIES, FUSE_MAX_WIDTH, SECTION_BYTES, bloom_bytes, bloom_bytes_per_nat, filter_bytes
 
 # The kinds of backup filter a region may get (besides none).
 FILTER_KINDS = ("bloom", "fuse")
@@ -235,7 +235,7 @@ def _problem(counts: np.ndarray, H: np.ndarray, aim: float, cap: float, widths, 
                 continue
             priced = [(filter_bytes("fuse", int(n), arity=k, width=int(width)), k) for k in FUSE_ARITIES]
             discrete[row, width], arity[row, width] = min(priced)
-    return _Problem(H, counts / (8 * LN2 * LN2), discrete, arity, aim, cap, bloom)
+    return _Problem(H, bloom_bytes_per_nat(counts), discrete, arity, aim, cap, bloom)
 
 
 def _branch_and_bound(problem: _Problem) -> tuple[float, np.ndarray, np.ndarray]:

@@ -5,7 +5,7 @@ budget f_i) and holds exactly the members whose score falls in it. Four cases:
 
 - no members in the region: mode "no", no bits (every key there answers no, which is never wrong);
 - f_i = 1: mode "yes", no bits (every key there answers yes);
-- mode "bloom": a Bloom filter of bloom_bits(n_i, f_i) bits probed bloom_hashes(m_i, n_i) times;
+- mode "bloom": a Bloom filter of the bits and probes `tamis.sizing.bloom_shape` gives n_i keys at f_i;
 - mode "fuse": a binary fuse filter of r-bit fingerprints (f_i = 2^-r, `tamis.fuse`). Should its
   construction fail at every seed and size it tries, the region gets a Bloom filter at f_i instead.
 
@@ -24,9 +24,10 @@ from typing import Literal
 
 import numpy as np
 
-from tamis.bloom import BloomFilter, KeyHashes, bloom_bits, bloom_hashes, hash_keys
+from tamis.bloom import BloomFilter, KeyHashes, hash_keys
 from tamis.budgets import FilterChoice
 from tamis.fuse import FuseFilter, build_fuse
+from tamis.sizing import bloom_shape, built_bloom_fpr, fuse_fpr
 
 FilterMode = Literal["bloom", "fuse", "yes", "no"]  # tamis.format.REGION_MODES
 
@@ -81,6 +82,17 @@ class RegionFilter:
         return self.words.nbytes
 
 
+def region_rate(region: RegionFilter) -> float:
+    """The false-positive rate of a built region filter for random keys of its region: a Bloom
+    filter's from its very bits (`tamis.sizing.built_bloom_fpr`), a fuse filter's 2^-r, 1 for "yes"
+    and 0 for "no". The plan's rates are these, so the plan is the filter that gets built."""
+    if region.mode == "bloom":
+        return built_bloom_fpr(region.words, region.bits, region.hashes)
+    if region.mode == "fuse":
+        return fuse_fpr(region.width)
+    return 1.0 if region.mode == "yes" else 0.0
+
+
 def _no_bits() -> np.ndarray:
     return np.zeros(0, dtype=np.uint64)
 
@@ -108,8 +120,8 @@ def empty_region_filter(members: int, choice: FilterChoice, hash_seed: int) -> R
 
 
 def _empty_bloom(members: int, fpr: float, hash_seed: int) -> RegionFilter:
-    bits = bloom_bits(members, fpr)
-    bloom = BloomFilter.empty(bits, bloom_hashes(bits, members), hash_seed)
+    bits, hashes = bloom_shape(members, fpr)
+    bloom = BloomFilter.empty(bits, hashes, hash_seed)
     return RegionFilter("bloom", bits, bloom.hashes, members, fpr, bloom.words)
 
 

@@ -13,7 +13,7 @@ from tamis.sizing import bloom_bits, lower_bound_bits
 from tamis.config import BuildConfig
 from tamis.corpus import AUTO_HEAVY_COUNT, Corpus
 from tamis.drift import Drift
-from tamis.hot_keys import Sparing
+from tamis.planning import SettledPlan
 from tamis.verify import GateCheck, PlainComparison, Verification, refusal_reasons
 
 
@@ -37,7 +37,9 @@ def tau_rule(heavy_count: int) -> str:
             f"known to within 25% at 95% confidence")
 
 
-def _region_rows(plan, filters) -> list[dict]:
+def _region_rows(plan, filters, planned: list[float], measured) -> list[dict]:
+    """One row a region: its plan, its filter, its rate as built for random keys (`planned_fpr`)
+    and as measured on its held-out light keys (`measured_fpr`, of `measured_keys` keys)."""
     bounds = [None, *(int(b) for b in plan.boundaries), None]
     return [
         {
@@ -51,6 +53,9 @@ def _region_rows(plan, filters) -> list[dict]:
             "width": region.width if region.mode == "fuse" else None,
             "hashes": region.hashes if region.mode in ("bloom", "fuse") else None,
             "filter_bytes": region.nbytes,
+            "planned_fpr": planned[i],
+            "measured_fpr": measured[i].fpr if measured else None,
+            "measured_keys": measured[i].keys if measured else None,
         }
         for i, region in enumerate(filters)
     ]
@@ -71,7 +76,8 @@ def build_report(
     drift: Drift,
     comparison: PlainComparison,
     published_plain: bool,
-    sparing: Sparing,
+    settled: SettledPlan,
+    plain_settled: SettledPlan,
     version: int | None,
     timings: dict,
 ) -> dict:
@@ -108,7 +114,7 @@ def build_report(
             "aim_fpr": aim_fpr,
             "aim_below_half_target": aim_fpr < target / 2,
             "tau_rule": tau_rule(config.corpus.heavy_count),
-            "hot_keys": sparing.as_report(),
+            "hot_keys": settled.sparing.as_report(),
         },
         "false_negatives": verification.false_negatives,
         "answer_paths": verification.paths.as_report(),
@@ -130,10 +136,12 @@ def build_report(
         },
         "separation": {"kl_bits": plan.kl_bits, "auc": choice.auc},
         "model": {"trees": choice.trees, "params": choice.params, "candidates": choice.candidates},
-        "regions": _region_rows(plan, filters),
+        "regions": _region_rows(plan, filters, settled.rates, verification.by_region),
         "expected_fpr": plan.expected_fpr,
+        "plan": settled.as_report(),
         "drift": drift.as_report(),
-        "plain_filter": comparison.as_report(config.gate.when_model_does_not_pay, published_plain),
+        "plain_filter": {**comparison.as_report(config.gate.when_model_does_not_pay, published_plain),
+                         "plan": plain_settled.as_report()},
         "gate": {"passed": not reasons, "reasons": reasons, "checks": [check.as_report() for check in checks]},
         "timings": timings,
     }

@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from tamis.artifact import write_atomically
+from tamis.sizing import BLOOM_OVERHEAD
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -369,9 +370,15 @@ def gate_rows(report: dict) -> list[list[str]]:
 def region_rows(regions: Sequence[dict]) -> list[list[object]]:
     return [
         [f"R{i}", "-inf" if r["score_from"] is None else r["score_from"], "+inf" if r["score_to"] is None else r["score_to"],
-         f"{r['members']:,}", f"{r['nonmember_share']:.4%}", f"{r['fpr']:.4%}", kind_label(r), f"{r['filter_bytes']:,}"]
+         f"{r['members']:,}", f"{r['nonmember_share']:.4%}", f"{r['fpr']:.4%}", kind_label(r), f"{r['filter_bytes']:,}",
+         _optional_percent(r.get("planned_fpr")), _optional_percent(r.get("measured_fpr")),
+         "-" if r.get("measured_keys") is None else f"{r['measured_keys']:,}"]
         for i, r in enumerate(regions)
     ]
+
+
+def _optional_percent(value: float | None) -> str:
+    return "-" if value is None else f"{value:.4%}"
 
 
 def drift_rows(drift: dict, report: dict) -> list[tuple[str, object]]:
@@ -415,7 +422,7 @@ TERMS = (
                          "their number; with counts the rate is by lookups, and a few heavy keys weigh like few "
                          "draws: Kish's (sum of counts)^2 / sum of squared counts. The upper bound is computed on it."),
     ("lower bound", "n log2(1/F) bits for n members at rate F: the fewest bytes any filter without a model can "
-                    "take (a plain Bloom filter needs about 1.44 times that). A learned filter may go below it, "
+                    f"take (a plain Bloom filter needs about {BLOOM_OVERHEAD:.2f} times that). A learned filter may go below it, "
                     "because its model already tells most non-members from members; when the artifact is above "
                     "it, the model did not earn that much."),
 )
@@ -508,12 +515,13 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         *_figure_html(figures, "score distributions"),
         "<h2>Regions</h2>",
         *_figure_html(figures, "region budgets and filter sizes"),
-        _table(["region", "scores from", "to", "members", "non-member share", "budget", "filter", "filter bytes"],
+        _table(["region", "scores from", "to", "members", "non-member share", "budget", "filter", "filter bytes",
+                "rate as built", "rate measured", "held-out keys"],
                region_rows(report["regions"])),
         "<h2>Size</h2>",
         *_figure_html(figures, "size against a plain Bloom filter and the lower bound"),
         "<p>The lower bound is the fewest bytes any filter without a model can take for these members at the "
-        "target, n log2(1/F) bits; a plain Bloom filter needs about 1.44 times that. The learned artifact beats "
+        f"target, n log2(1/F) bits; a plain Bloom filter needs about {BLOOM_OVERHEAD:.2f} times that. The learned artifact beats "
         "it only as far as its model tells non-members from members.</p>",
         *sample_html(report["corpus"].get("sample")),
         "<h2>Drift of the version in service</h2>",

@@ -226,17 +226,6 @@ def measure(heavy_answers: np.ndarray, heldout_answers: np.ndarray, strata: Stra
     )
 
 
-def planned_rate(region_rates, heavy_regions, check_regions, strata: Strata, check_counts: np.ndarray) -> float:
-    """The rate a plan will have, estimated on keys it was not fitted on: every heavy key at the
-    rate of its region, the tail at the lookup-weighted rate of the check keys (validation keys
-    that took no part in the model's choice, the boundaries or the budgets)."""
-    rates = np.asarray(region_rates, dtype=np.float64)
-    heavy = float(np.dot(strata.heavy_counts, rates[heavy_regions]))
-    checked = check_counts.sum()
-    tail = strata.tail_lookups * float(np.dot(check_counts, rates[check_regions])) / checked if checked else 0.0
-    return (heavy + tail) / strata.lookups
-
-
 def aim_fpr(
     target: float,
     strata: Strata,
@@ -251,32 +240,93 @@ def aim_fpr(
     false-positive lookups, with variance f V_gate (heavy counts' Poisson noise plus the held-out
     tail's weights: V_gate = heavy lookups + sum of held-out c^2 / s^2). The plan's own rate is
     itself uncertain: the tail's share is estimated on `validation_counts`, the keys that pin the
-    plan's rate (the check keys, `planned_rate`; f times sum of their c^2 / s_val^2), and each heavy key is a false positive by the luck of hashing (f (1 - f) sum of heavy
+    plan's rate (the check keys, `tamis.planning`; f times sum of their c^2 / s_val^2), and each heavy key is a false positive by the luck of hashing (f (1 - f) sum of heavy
     c^2). In all but the unluckiest builds the total stays below f L + s sqrt(those variances), where
     s = `aim_sigmas` for the sampling terms; when the build picks each region's hash seed among
     `seed_candidates` to spare the heavy keys, the luck term takes the quantile of the best of them
     (it only shrinks). Plan for the largest f whose unlucky total still has a bound at most the
     target; both sides grow with f, so bisection finds it.
     """
-    lookups = strata.lookups
-    tail_share = strata.tail_sampled
-    validation_share = float(validation_counts.sum()) / strata.tail_lookups if strata.tail_lookups else 0.0
-    heldout = strata.heldout_counts.astype(np.float64)
-    validation = validation_counts.astype(np.float64)
-    heavy = strata.heavy_counts.astype(np.float64)
-    gate_unit = strata.heavy_lookups + (float(np.dot(heldout, heldout)) / tail_share**2 if tail_share else 0.0)
-    plan_unit = float(np.dot(validation, validation)) / validation_share**2 if validation_share else 0.0
-    luck_unit = float(np.dot(heavy, heavy))
+    plan_unit = _plan_unit(strata, validation_counts)
+    luck_unit = float(np.dot(strata.heavy_counts.astype(np.float64), strata.heavy_counts))
     luck_sigmas = best_of_quantile(aim_sigmas, seed_candidates)
-    weight = strata.heaviest_weight
+    gate_unit = _gate_unit(strata)
 
     def passes(f: float) -> bool:
-        expected = f * lookups
-        variance = f * gate_unit
-        unlucky = expected + aim_sigmas * math.sqrt(variance + f * plan_unit) + luck_sigmas * math.sqrt(f * (1 - f) * luck_unit)
-        return float(gamma_upper(unlucky, variance * unlucky / expected, weight, confidence)) / lookups <= target
+        luck = luck_sigmas * math.sqrt(f * (1 - f) * luck_unit)
+        return _unlucky_bound(f * strata.lookups, f * gate_unit, f * plan_unit, luck, aim_sigmas, strata, confidence) <= target
 
-    low, high = 0.0, target
+    return _largest_passing(passes, target)
+
+
+def tail_allowance(
+    target: float, strata: Strata, check_counts: np.ndarray, confidence: float, aim_sigmas: float, heavy_fp_lookups: float
+) -> float | None:
+    """The largest lookup-weighted rate of the tail a build may have once its filters are built and
+    its heavy keys' false-positive lookups are known exactly (`heavy_fp_lookups`), so that it passes
+    the gate as often as `aim_fpr` promises; None when the heavy keys alone leave no room.
+
+    The same reckoning as `aim_fpr` with the heavy stratum fixed: the gate sees heavy_fp + t T
+    false-positive lookups (T the tail's lookups) with variance heavy_fp + t V_tail, the check
+    keys that pin t add t V_check, and the heavy keys' luck of hashing is spent (no luck term).
+    """
+    tail_unit = _gate_unit(strata) - strata.heavy_lookups
+    plan_unit = _plan_unit(strata, check_counts)
+
+    def passes(t: float) -> bool:
+        expected = heavy_fp_lookups + t * strata.tail_lookups
+        return _unlucky_bound(expected, heavy_fp_lookups + t * tail_unit, t * plan_unit, 0.0, aim_sigmas, strata, confidence) <= target
+
+    if not passes(0.0):
+        return None
+    return _largest_passing(passes, 1.0)
+
+
+def outcome_headroom(
+    target: float, strata: Strata, check_counts: np.ndarray, confidence: float, aim_sigmas: float, heavy_fp_lookups: float,
+    tail_rate: float,
+) -> float:
+    """The largest factor s by which a built outcome (heavy false-positive lookups, tail rate) could
+    grow, both together, and still pass as `tail_allowance` reckons: where the next plan should be
+    made, relative to this one, whichever stratum carries the rate (up to 2^20)."""
+    tail_unit = _gate_unit(strata) - strata.heavy_lookups
+    plan_unit = _plan_unit(strata, check_counts)
+
+    def passes(scale: float) -> bool:
+        heavy, tail = scale * heavy_fp_lookups, min(scale * tail_rate, 1.0)
+        expected = heavy + tail * strata.tail_lookups
+        return _unlucky_bound(expected, heavy + tail * tail_unit, tail * plan_unit, 0.0, aim_sigmas, strata, confidence) <= target
+
+    return _largest_passing(passes, float(1 << 20))
+
+
+def _gate_unit(strata: Strata) -> float:
+    """The gate's variance per unit of rate: heavy lookups (Poisson) plus the held-out tail's
+    weights, sum of held-out c^2 / s^2."""
+    share = strata.tail_sampled
+    heldout = strata.heldout_counts.astype(np.float64)
+    return strata.heavy_lookups + (float(np.dot(heldout, heldout)) / share**2 if share else 0.0)
+
+
+def _plan_unit(strata: Strata, validation_counts: np.ndarray) -> float:
+    """The variance per unit of rate of the tail's rate estimated on `validation_counts` (the check keys)."""
+    share = float(validation_counts.sum()) / strata.tail_lookups if strata.tail_lookups else 0.0
+    validation = validation_counts.astype(np.float64)
+    return float(np.dot(validation, validation)) / share**2 if share else 0.0
+
+
+def _unlucky_bound(expected: float, gate_variance: float, plan_variance: float, luck: float, sigmas: float,
+                   strata: Strata, confidence: float) -> float:
+    """The gate's bound on a build that lands `sigmas` standard deviations (and `luck`) above its
+    expected false-positive lookups; the gate's variance grows with the total as a Poisson's would."""
+    unlucky = expected + sigmas * math.sqrt(gate_variance + plan_variance) + luck
+    variance = gate_variance * unlucky / expected if expected > 0 else gate_variance
+    return float(gamma_upper(unlucky, variance, strata.heaviest_weight, confidence)) / strata.lookups
+
+
+def _largest_passing(passes, high: float) -> float:
+    """The largest rate in [0, high] that passes (to 2^-50 of high), for a test monotone in the rate."""
+    low = 0.0
     for _ in range(50):
         mid = (low + high) / 2
         low, high = (mid, high) if passes(mid) else (low, mid)
@@ -363,22 +413,51 @@ def _differing(answers: np.ndarray) -> int:
 
 @dataclass(frozen=True)
 class Verification:
+    """`by_region`: per region, the held-out light keys there, their lookups and the lookups
+    answered "maybe" (`RegionMeasurement`), when the regions of the held-out keys were given."""
+
     false_negatives: int
     members_checked: int
     heldout: Measurement
     paths: PathAgreement
+    by_region: tuple[RegionMeasurement, ...] = ()
+
+
+@dataclass(frozen=True)
+class RegionMeasurement:
+    """One region's held-out light keys: how many, their lookups, and the lookups answered "maybe"."""
+
+    keys: int
+    lookups: int
+    false_positive_lookups: int
+
+    @property
+    def fpr(self) -> float | None:
+        return self.false_positive_lookups / self.lookups if self.lookups else None
+
+
+def by_region(heldout_answers: np.ndarray, heldout_regions: np.ndarray, counts: np.ndarray, regions: int) -> tuple[RegionMeasurement, ...]:
+    """Each region's held-out keys, lookups and lookups answered maybe."""
+    keys = np.bincount(heldout_regions, minlength=regions)
+    lookups = np.bincount(heldout_regions, weights=counts, minlength=regions)
+    hits = np.bincount(heldout_regions, weights=counts * heldout_answers, minlength=regions)
+    return tuple(RegionMeasurement(int(k), int(n), int(h)) for k, n, h in zip(keys, lookups, hits))
 
 
 def verification(member_answers: np.ndarray, sample_answers: np.ndarray, heavy_answers: np.ndarray,
-                 heldout_answers: np.ndarray, strata: Strata, confidence: float) -> Verification:
+                 heldout_answers: np.ndarray, strata: Strata, confidence: float,
+                 heldout_regions: np.ndarray | None = None, regions: int = 0) -> Verification:
     """The verdict on a filter from its answers: to every member and to a sample of held-out keys
     through every answer path ((keys, paths), `every_path_answers`), and to every heavy key and
     every held-out light key through the service's path. A member is a false negative when any
-    path answers it "no"."""
+    path answers it "no". With `heldout_regions` (each held-out key's region of `regions`), the
+    held-out rate is also measured region by region."""
     false_negatives = int(len(member_answers) - np.count_nonzero(member_answers.all(axis=1)))
     paths = PathAgreement(answer_paths(), len(member_answers), len(sample_answers),
                           _differing(member_answers), _differing(sample_answers))
-    return Verification(false_negatives, len(member_answers), measure(heavy_answers, heldout_answers, strata, confidence), paths)
+    regional = () if heldout_regions is None else by_region(heldout_answers, heldout_regions, strata.heldout_counts, regions)
+    return Verification(false_negatives, len(member_answers), measure(heavy_answers, heldout_answers, strata, confidence), paths,
+                        regional)
 
 
 def check_filter(loaded: MembershipFilter, corpus: Corpus, confidence: float) -> Verification:
@@ -441,13 +520,46 @@ def _check_answer_paths(agreement: PathAgreement) -> GateCheck:
     return GateCheck("answer_paths", True, 0, 0, f"{words} answer alike")
 
 
-def _check_fpr_upper(verification: Verification, target: float, fpr_slack: float) -> GateCheck:
+@dataclass(frozen=True)
+class PlanFigures:
+    """What the build planned, for the gate's advice: the aim it planned for, the settled plan's own
+    estimate of its built filters and what their heavy outcome allowed (None: nothing did,
+    `tamis.planning`)."""
+
+    aim: float
+    estimate: float
+    allowed: float | None
+
+
+def _check_fpr_upper(verification: Verification, target: float, settings: GateSettings, plan: PlanFigures | None) -> GateCheck:
     held = verification.heldout
-    limit = target * (1 + fpr_slack)
+    limit = target * (1 + settings.fpr_slack)
     words = f"the rate's {held.confidence:.0%} upper bound {held.fpr_upper:.4%} (heavy keys exact, the tail bounded)"
     if held.fpr_upper > limit:
-        return GateCheck("fpr_upper", False, held.fpr_upper, limit, f"{words} is above the allowed {limit:.4%}")
+        return GateCheck("fpr_upper", False, held.fpr_upper, limit,
+                         f"{words} is above the allowed {limit:.4%}; {fpr_advice(held, limit, settings, plan)}")
     return GateCheck("fpr_upper", True, held.fpr_upper, limit, f"{words} is within the allowed {limit:.4%}")
+
+
+def fpr_advice(held: Measurement, limit: float, settings: GateSettings, plan: PlanFigures | None) -> str:
+    """What to change when rule fpr_upper refuses: the aim, the plan's estimate and the measured
+    rate side by side, then the settings that would have passed."""
+    if plan is None:
+        return f"measured {held.fpr:.4%}; plan for a lower rate (raise gate.aim_sigmas from {settings.aim_sigmas:g})"
+    allowed = "nothing (the heavy keys alone)" if plan.allowed is None else f"{plan.allowed:.4%}"
+    side = f"aim {plan.aim:.4%}, plan estimate {plan.estimate:.4%} (allowed {allowed}), measured {held.fpr:.4%}"
+    ways = []
+    if plan.allowed is None or plan.estimate > plan.allowed:
+        ways.append("a cap on every region's rate (regions.max_region_fpr, e.g. 0.5) so that no heavy key lands in a region "
+                    "answering yes, or the plain filter (gate.when_model_does_not_pay = \"publish_plain\")")
+    if held.fpr > plan.estimate:
+        ways.append(f"a lower aim: the held-out keys measured {held.fpr / plan.estimate:.2f}x the plan's estimate, so plan "
+                    f"near {plan.aim * limit / held.fpr_upper:.4%} (raise gate.aim_sigmas from {settings.aim_sigmas:g})")
+    if held.fpr <= limit:
+        ways.append(f"a tighter bound: the measured rate is within the allowed {limit:.4%} but the tail's sampling adds "
+                    f"{held.fpr_upper - held.fpr:.4%}; more held-out lookups (raise corpus.heldout_share) narrow it, or "
+                    f"gate.fpr_slack = {held.fpr_upper / limit * (1 + settings.fpr_slack) - 1:.3f} accepts this bound")
+    return f"{side}; would pass with {'; or '.join(ways) if ways else 'a lower aim (raise gate.aim_sigmas)'}"
 
 
 def _check_artifact_bytes(total_bytes: int, max_bytes: int) -> GateCheck:
@@ -564,13 +676,15 @@ def gate_checks(
     settings: GateSettings,
     baseline: Baseline | None,
     comparison: PlainComparison | None = None,
+    plan: PlanFigures | None = None,
 ) -> list[GateCheck]:
     """Every gate rule checked after the artifact is written, in a fixed order (model_pays only
-    when the plain filter was built to compare with)."""
+    when the plain filter was built to compare with); `plan` words the advice of a refusal by
+    fpr_upper."""
     checks = [
         _check_false_negatives(verification),
         _check_answer_paths(verification.paths),
-        _check_fpr_upper(verification, target, settings.fpr_slack),
+        _check_fpr_upper(verification, target, settings, plan),
         _check_artifact_bytes(total_bytes, settings.max_artifact_bytes),
         _check_size_growth(total_bytes, settings.max_size_growth, baseline),
         _check_member_drop(members, settings.max_member_drop, baseline),

@@ -75,7 +75,7 @@ def build_golden(folder: Path) -> Path:
          (("members", corpus.members), ("train", corpus.train.keys), ("validation", corpus.validation.keys))}
 
     def filter_bytes(member_scores, val_scores, val_weights) -> float:
-        return plan_regions(member_scores, val_scores, val_weights, TARGET_FPR, REGIONS).estimated_total_bits / 8
+        return plan_regions(member_scores, val_scores, val_weights, TARGET_FPR, REGIONS, refine=False).estimated_total_bits / 8
 
     choice = fit_model(X["members"], X["train"], corpus.train.counts.astype(np.float64), X["validation"],
                        corpus.validation.counts.astype(np.float64), filter_bytes, MODEL)

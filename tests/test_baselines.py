@@ -15,7 +15,8 @@ import pytest
 
 from tamis.sizing import bloom_bytes, fuse_bytes
 from tamis.baselines import best_static_filter, clamped_ideal_bytes, ideal_bytes, plan_single_threshold
-from tamis.bloom import bloom_bits, bloom_fpr, hash_keys
+from tamis.bloom import hash_keys
+from tamis.sizing import bloom_bits, bloom_fpr
 from tamis.filters import build_filters
 from tamis.query import region_of
 

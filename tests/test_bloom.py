@@ -8,14 +8,8 @@ import numpy as np
 import pytest
 import xxhash
 
-from tamis.bloom import (
-    BloomFilter,
-    bloom_fpr,
-    bloom_hashes,
-    hash_keys,
-    probe_positions,
-    word_count,
-)
+from tamis.bloom import BloomFilter, hash_keys, probe_positions, word_count
+from tamis.sizing import bloom_fpr, bloom_hashes
 
 # Binomial tolerance used for every measured rate: 4 standard deviations (common practice; the chance
 # that a correct filter falls outside is about 6e-5 per check).

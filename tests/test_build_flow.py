@@ -76,7 +76,9 @@ def test_long_stages_report_their_advance(published):
     assert [e.done for e in features] == sorted(e.done for e in features)
     assert steps["filters"][-1].done == steps["filters"][-1].total == corpus["members"]
     # one step a chunk: the members, training, validation, check and heavy keys are chunked part by part
-    assert len(steps["filters"]) == math.ceil(corpus["members"] / CHUNK_KEYS)
+    # and the filters stage fills the members once a plan it settles (tamis.planning), each round's steps counting afresh
+    rounds = len(outcome.report["plan"]["rounds"])
+    assert len(steps["filters"]) == rounds * math.ceil(corpus["members"] / CHUNK_KEYS)
     parts = (corpus["members"], split["train"], split["validation"], split["check"], split["heavy"])
     assert len(features) == sum(math.ceil(keys / CHUNK_KEYS) for keys in parts)
     # one step per priced checkpoint: the model report lists them all
@@ -193,3 +195,21 @@ def test_a_held_out_part_too_small_for_the_target_stops_before_training(corpus_f
     assert err.count("\n") == 1 and err.startswith("tamis: min_heldout: the tail (keys looked up fewer than tau = 44 times) has ")
     assert "held-out tail lookups" in err and "times as much log" in err
     assert _store_entries(tmp_path / "store") == []
+
+
+def test_each_region_reports_its_rate_as_built_beside_its_measured_rate(published):
+    # Held-out light keys are random keys to a region's filter, so each region's lookup-weighted
+    # measured rate is a weighted binomial mean around the rate as built: variance
+    # p (1 - p) sum c^2 / (sum c)^2 <= p (1 - p) tau / lookups, as every light count is below tau.
+    # 5 standard deviations (normal tail, common practice).
+    outcome, _ = published
+    tau = outcome.report["strata"]["tau"]
+    rows = outcome.report["regions"]
+    assert sum(row["measured_keys"] for row in rows) == outcome.report["corpus"]["split"]["heldout"]
+    for row in rows:
+        planned, measured = row["planned_fpr"], row["measured_fpr"]
+        assert planned == {"yes": 1.0, "no": 0.0}.get(row["mode"], planned)
+        if measured is None:
+            continue
+        lookups = row["measured_keys"]  # at least the keys' count of lookups (every count >= 1)
+        assert abs(measured - planned) <= 5 * math.sqrt(planned * (1 - planned) * tau / lookups) + 1e-12

@@ -13,10 +13,13 @@ from tamis.verify import (
     Measurement,
     PathAgreement,
     PlainComparison,
+    PlanFigures,
     Strata,
     Verification,
     gate_checks,
     needed_heldout_lookups,
+    outcome_headroom,
+    tail_allowance,
     publishes_plain,
     refusal_reasons,
     require_heldout,
@@ -38,6 +41,26 @@ def verification(false_negatives: int = 0, fpr_upper: float = 0.008, differing: 
 def checks(total_bytes: int = 10_000, members: int = 10_000, baseline: Baseline | None = None, check=None, **gate):
     return gate_checks(check or verification(), target=TARGET, total_bytes=total_bytes, members=members,
                        settings=GateSettings(**gate), baseline=baseline)
+
+
+def advice(plan: PlanFigures, fpr_upper: float = 0.0105) -> str:
+    found = gate_checks(verification(fpr_upper=fpr_upper), target=TARGET, total_bytes=1, members=1, settings=GateSettings(),
+                        baseline=None, plan=plan)
+    return refusal_reasons(found)[0]
+
+
+def test_a_refused_rate_names_aim_estimate_and_measurement_and_what_would_pass():
+    # measured 0.6% (verification()), bound 1.05%: within the target, so a tighter bound would pass
+    words = advice(PlanFigures(aim=0.0093, estimate=0.0061, allowed=0.0062))
+    assert "aim 0.9300%, plan estimate 0.6100% (allowed 0.6200%), measured 0.6000%" in words
+    assert "corpus.heldout_share" in words and "gate.fpr_slack = 0.050" in words
+    assert "max_region_fpr" not in words and "aim_sigmas" not in words
+    # measured above the plan's estimate: a lower aim, scaled by how far the bound overshot
+    words = advice(PlanFigures(aim=0.0093, estimate=0.005, allowed=0.0062))
+    assert "1.20x the plan's estimate" in words and f"near {0.0093 / 1.05:.4%}" in words and "gate.aim_sigmas" in words
+    # no plan fitted its allowance: a cap or the plain filter
+    words = advice(PlanFigures(aim=0.0093, estimate=0.0070, allowed=None))
+    assert "allowed nothing" in words and "regions.max_region_fpr" in words and "publish_plain" in words
 
 
 def reasons(**kwargs) -> list[str]:
@@ -188,3 +211,20 @@ def test_model_pays_compares_with_the_plain_filter(learned, policy, passed, plai
     assert publishes_plain(comparison, policy) is plain_published
     if not passed:
         assert refusal_reasons(found) == [f"model_pays: {rule.detail}"]
+
+
+def test_the_tail_allowance_and_the_headroom_of_a_built_outcome_agree():
+    # A window of 1,000,000 lookups: 100 heavy keys of 5,000 lookups, a tail of 500,000 lookups
+    # sampled by 50,000 held-out and 20,000 check keys of 1 to 43 lookups.
+    rng = np.random.default_rng(5)
+    strata = Strata(tau=44, lookups=1_000_000, heavy_counts=np.full(100, 5000), tail_lookups=500_000, tail_max_count=43,
+                    heldout_counts=rng.integers(1, 44, 50_000))
+    check = rng.integers(1, 44, 20_000)
+    heavy_fp, tail = 2_000.0, 0.004
+    scale = outcome_headroom(TARGET, strata, check, 0.95, 2.0, heavy_fp, tail)
+    assert scale > 1  # 0.6% expected against a 1% target: room to grow
+    # grown by that factor, the outcome sits on the allowance for its heavy part
+    assert tail_allowance(TARGET, strata, check, 0.95, 2.0, heavy_fp * scale) == pytest.approx(tail * scale, rel=1e-6)
+    # more heavy false positives leave less room for the tail, and too many leave none
+    assert tail_allowance(TARGET, strata, check, 0.95, 2.0, 4 * heavy_fp) < tail_allowance(TARGET, strata, check, 0.95, 2.0, heavy_fp)
+    assert tail_allowance(TARGET, strata, check, 0.95, 2.0, 0.02 * strata.lookups) is None

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from tamis.artifact import read_artifact, write_artifact
-from tamis.bloom import bloom_fpr
+from tamis.sizing import bloom_fpr
 from tamis.features import default_feature_spec, featurize
 from tamis.filters import build_filters
 from tamis.loader import FilterLoadError, open_filter

@@ -17,7 +17,7 @@ import pytest
 from scipy import stats
 from test_trees import assert_matches_lightgbm
 
-from tamis.bloom import bloom_bits
+from tamis.sizing import bloom_bits
 from tamis.booster import MAX_ROUNDING_ERROR, choose_scale, compile_booster, compile_trees, float32_at_or_below, parse_tree
 from tamis.config import ModelSettings
 from tamis.format import INT32_LIMIT

@@ -13,7 +13,8 @@ from hypothesis import HealthCheck, event, example, given, settings
 from hypothesis import strategies as st
 from scipy import optimize, stats
 
-from tamis.bloom import BloomFilter, bloom_bits, bloom_hashes, hash_keys
+from tamis.bloom import BloomFilter, hash_keys
+from tamis.sizing import bloom_bits, bloom_hashes
 from tamis.features import default_feature_spec, featurize
 from tamis.loader import open_filter
 from tamis.query import available_paths, region_of
