@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import csv
 import errno
+import glob
 import io
 import json
 import math
@@ -49,6 +50,9 @@ from tamis.keylines import KeyLinesError, split_key_lines
 from tamis.keylines import line_of_offset as _line_of_offset
 from tamis.provenance import build_time
 from tamis.traffic import is_sample_folder, read_sample_folder, sample_files
+
+# A source path holding one of these is a glob pattern of partitions (when no file has that very name).
+_GLOB_CHARACTERS = set("*?[")
 
 TABLE_SUFFIXES = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".ndjson": "ndjson", ".jsonl": "ndjson"}
 
@@ -261,15 +265,38 @@ def _gib(value: int) -> str:
     return f"{value / 2**30:.1f} GiB"
 
 
+def source_files(path: Path) -> list[Path]:
+    """The files of a source: the file itself, or the partitions of a folder or of a glob pattern
+    (`members/*.parquet`), by name. Names starting with "." or "_" are skipped: the temporaries and
+    markers (`_SUCCESS`, `_metadata`) that writers of partitioned datasets leave beside the data,
+    common practice of those writers. Raises BadInput when a folder or pattern gives no file."""
+    if path.is_dir():
+        found, problem = list(path.iterdir()), f"{path} is a folder holding no key files"
+    elif _GLOB_CHARACTERS & set(str(path)) and not path.exists():
+        found, problem = [Path(name) for name in glob.glob(str(path))], f"no file matches {path}"
+    else:
+        return [path]
+    files = sorted(entry for entry in found if not entry.name.startswith((".", "_")))
+    if not files:
+        raise BadInput(f"{problem}; give a key file, a folder of partitions (Parquet, CSV, NDJSON or one key a line) "
+                       f"or a pattern that matches some")
+    for entry in files:
+        if entry.is_dir():
+            raise BadInput(f"{entry}: a folder inside the partitions of {path}; give the partitions as files of one "
+                           f"folder (or a pattern that matches files only)")
+    return files
+
+
 def check_sources(members_path: Path, non_members_path: Path) -> MemoryEstimate:
     """Both sources open, and the build they make fits in memory; raises BadInput otherwise.
 
     Cheap (file sizes and a 1 MiB sample), so a caller may run it before starting anything heavy.
     """
-    paths = [members_path, *([] if is_sample_folder(non_members_path) else [non_members_path])]
-    for path in paths:
+    sampled = is_sample_folder(non_members_path)
+    files = source_files(members_path) + ([] if sampled else source_files(non_members_path))
+    for path in files:
         require_readable(path)
-    estimate = estimate_build_memory(paths + sample_files(non_members_path) if len(paths) == 1 else paths)
+    estimate = estimate_build_memory(files + (sample_files(non_members_path) if sampled else []))
     available = available_memory()
     if estimate.needed_bytes > available:
         raise BadInput(
@@ -563,7 +590,7 @@ def _check_lengths(path: Path, kind: str, keys: list[bytes], max_key_bytes: int)
         )
 
 
-def read_source(path: Path, settings: CorpusSettings, want_counts: bool) -> RawSource:
+def read_file(path: Path, settings: CorpusSettings, want_counts: bool) -> RawSource:
     """Keys (and counts) of one source file, checked for empty, over-long and undecodable keys."""
     require_readable(path)
     kind = _format_of(path)
@@ -574,6 +601,31 @@ def read_source(path: Path, settings: CorpusSettings, want_counts: bool) -> RawS
     else:
         keys, counts = _read_table(path, kind, settings, want_counts)
     _check_lengths(path, kind, keys, settings.max_key_bytes)
+    return RawSource(keys, counts, len(keys))
+
+
+def counted_partitions(source: Path, partitions: Sequence[tuple[Path, RawSource]]) -> bool:
+    """Whether a source's partitions carry lookup counts: all that hold keys, or none. A mix is
+    refused (a partition without counts would count each of its keys once, a silent guess)."""
+    holding = [(path, part) for path, part in partitions if part.rows]
+    counted = [path for path, part in holding if part.counts is not None]
+    if counted and len(counted) < len(holding):
+        uncounted = next(path for path, part in holding if part.counts is None)
+        raise BadInput(f"{source}: partition {uncounted} has no count column while {counted[0]} has one; give every "
+                       f"partition the same columns")
+    return bool(counted)
+
+
+def read_source(path: Path, settings: CorpusSettings, want_counts: bool) -> RawSource:
+    """Keys (and counts) of a source: one file, or every partition of a folder or pattern
+    (`source_files`) read in turn and joined in the order of their names."""
+    files = source_files(path)
+    if files == [path]:
+        return read_file(path, settings, want_counts)
+    parts = [(file, read_file(file, settings, want_counts)) for file in files]
+    counted = counted_partitions(path, parts)
+    keys = [key for _, part in parts for key in part.keys]
+    counts = np.concatenate([part.counts for _, part in parts if part.rows]) if counted else None
     return RawSource(keys, counts, len(keys))
 
 
@@ -651,21 +703,27 @@ def _is_utf8(key: bytes) -> bool:
     return True
 
 
+def conflict_error(labelled: int, example: bytes) -> BadInput:
+    """The refusal of keys labelled both member and non-member (corpus.conflicts = "error")."""
+    return BadInput(
+        f"{labelled} keys are listed as both member and non-member (e.g. {example!r}); fix the labels, or set "
+        f"corpus.conflicts = \"member\" to keep them members"
+    )
+
+
 def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSettings, added: Sequence[bytes] = ()) -> Corpus:
     """The corpus of the two sources; `added` are members recorded since the export (`tamis add`,
     folded in by the build): members whatever the export says, and never non-members. The stats
     count how many of them the export lacks (`added_not_in_export`)."""
     check_sources(members_path, non_members_path)
     members_raw = read_source(members_path, settings, want_counts=False)
-    if members_raw.rows == 0:
-        raise BadInput(f"{members_path}: no members; a filter needs at least one key to hold")
+    require_members(members_raw.rows, members_path)
     sample = None
     if is_sample_folder(non_members_path):
         non_raw, sample = read_lookup_sample(non_members_path, settings, {*members_raw.keys, *added})
     else:
         non_raw = read_source(non_members_path, settings, want_counts=True)
-    if non_raw.rows == 0:
-        raise BadInput(f"{non_members_path}: no non-members; the false-positive rate cannot be measured without them")
+    require_non_members(non_raw.rows, non_members_path)
 
     exported = list(dict.fromkeys(members_raw.keys))
     members = exported
@@ -684,17 +742,41 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
         exported_set = set(exported) if len(members) > len(exported) else member_set
         labelled_both = [k for k, m in zip(non_keys, in_members) if m and k in exported_set]
         if labelled_both:
-            raise BadInput(
-                f"{len(labelled_both)} keys are listed as both member and non-member (e.g. {labelled_both[0]!r}); fix the "
-                f"labels, or set corpus.conflicts = \"member\" to keep them members"
-            )
+            raise conflict_error(len(labelled_both), labelled_both[0])
     if conflicts:
         keep = ~in_members
         non_keys = [k for k, m in zip(non_keys, in_members) if not m]
         non_counts = non_counts[keep]
+    stats = {
+        "member_rows": members_raw.rows,
+        "member_duplicates": members_raw.rows - len(exported),
+        "added_not_in_export": len(members) - len(exported),
+        "non_member_rows": non_raw.rows,
+        "non_member_duplicates": non_raw.rows - len(non_keys) - conflicts,
+        "conflicts": conflicts,
+        "partitions": {"members": len(source_files(members_path)),
+                       "non_members": 0 if sample else len(source_files(non_members_path))},
+        **({"sample": sample} if sample else {}),
+    }
+    return split_corpus(members, non_keys, non_counts, has_counts, stats, settings, non_members_path)
+
+
+def require_members(rows: int, path: Path) -> None:
+    if rows == 0:
+        raise BadInput(f"{path}: no members; a filter needs at least one key to hold")
+
+
+def require_non_members(rows: int, path: Path) -> None:
+    if rows == 0:
+        raise BadInput(f"{path}: no non-members; the false-positive rate cannot be measured without them")
+
+
+def split_corpus(members: list[bytes], non_keys: list[bytes], non_counts: np.ndarray, has_counts: bool, stats: dict,
+                 settings: CorpusSettings, non_members_path: Path) -> Corpus:
+    """The corpus of distinct members and of distinct non-members that are not members (in the
+    order first seen): heavy keys apart, the light ones split by their seeded hash."""
     if not non_keys:
         raise BadInput(f"{non_members_path}: every non-member is also a member; no non-members are left to measure")
-
     tau = heavy_cutoff(settings)
     heavy = non_counts >= tau
     bucket = split_buckets(non_keys, settings.split_seed)
@@ -718,13 +800,4 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
                 f"{settings.validation_share}, heldout_share = {settings.heldout_share}); give more non-members, "
                 f"or raise corpus.heavy_count"
             )
-    stats = {
-        "member_rows": members_raw.rows,
-        "member_duplicates": members_raw.rows - len(exported),
-        "added_not_in_export": len(members) - len(exported),
-        "non_member_rows": non_raw.rows,
-        "non_member_duplicates": non_raw.rows - len(non_keys) - conflicts,
-        "conflicts": conflicts,
-        **({"sample": sample} if sample else {}),
-    }
     return Corpus(members=members, tau=tau, has_counts=has_counts, stats=stats, **parts)

@@ -299,7 +299,7 @@ def test_an_empty_file_holds_no_keys(tmp_path, suffix):
 def test_a_folder_and_a_path_through_a_file_are_named(tmp_path):
     folder = tmp_path / "folder.csv"
     folder.mkdir()
-    with pytest.raises(BadInput, match="is a folder, not a file"):
+    with pytest.raises(BadInput, match="is a folder holding no key files"):
         read_source(folder, SETTINGS, want_counts=True)
     afile = _write(tmp_path / "afile", b"x\n")
     with pytest.raises(BadInput, match="a part of the path is a file"):
@@ -354,7 +354,8 @@ def test_duplicates_and_conflicts_are_counted_in_the_stats(tmp_path):
     pl.DataFrame({"key": keys + ["n1", "n1", "both", "both"], "count": [1] * 200 + [4, 5, 2, 3]}).write_csv(non)
     corpus = load_corpus(members, non, SETTINGS)
     assert corpus.stats == {"member_rows": 4, "member_duplicates": 1, "non_member_rows": 204,
-                            "non_member_duplicates": 3, "conflicts": 1, "added_not_in_export": 0}
+                            "non_member_duplicates": 3, "conflicts": 1, "added_not_in_export": 0,
+                            "partitions": {"members": 1, "non_members": 1}}
     parts = corpus.non_member_parts
     counts = {k: int(c) for part in parts for k, c in zip(part.keys, part.counts)}
     assert counts[b"n1"] == 1 + 4 + 5 and b"both" not in counts and len(counts) == 200
@@ -417,3 +418,68 @@ def test_the_training_sample_is_drawn_once_the_same_way_from_keys_or_rows():
     assert sample.keys == [keys.keys[i] for i in pick] and np.array_equal(sample.counts, keys.counts[pick])
     assert len(set(sample.keys)) == 100 and list(pick) == sorted(pick)
     assert sample_keys(keys, 1000, seed=4) is keys
+
+
+# --- partitioned sources ------------------------------------------------------------------------------
+
+
+def _partitioned(tmp_path: Path, members: int = 400, non_members: int = 3000) -> dict:
+    """One members file and one lookups table, and the same rows cut into partitions: members in
+    three one-key-a-line files, lookups in four Parquet files, with a writer's marker beside them."""
+    from tamis.demo import write_demo_corpus
+
+    members_path, lookups_path = write_demo_corpus(tmp_path / "whole", members=members, non_members=non_members, seed=5)
+    lines = members_path.read_bytes().splitlines(keepends=True)
+    lookups = pl.read_parquet(lookups_path)
+    lookups = pl.concat([lookups, lookups.head(50)])  # keys repeated across partitions: one key each, counts summed
+    member_parts, lookup_parts = tmp_path / "members", tmp_path / "lookups"
+    member_parts.mkdir()
+    lookup_parts.mkdir()
+    for i in range(3):
+        (member_parts / f"part-{i}.txt").write_bytes(b"".join(lines[i::3]) + lines[i])  # and a duplicate of its own
+    cut = np.linspace(0, lookups.height, 5).astype(int)
+    for i in range(4):
+        lookups.slice(cut[i], cut[i + 1] - cut[i]).write_parquet(lookup_parts / f"part-{i}.parquet")
+    (lookup_parts / "_SUCCESS").write_bytes(b"")
+    whole_members = tmp_path / "members.txt"
+    whole_members.write_bytes(b"".join((member_parts / f"part-{i}.txt").read_bytes() for i in range(3)))
+    whole_lookups = tmp_path / "lookups.parquet"
+    lookups.write_parquet(whole_lookups)
+    return {"members": member_parts, "lookups": lookup_parts, "whole_members": whole_members, "whole_lookups": whole_lookups}
+
+
+def assert_same_corpus(first, second) -> None:
+    assert first.members == second.members
+    for name in ("heavy", "train", "validation", "check", "heldout"):
+        assert getattr(first, name).keys == getattr(second, name).keys, name
+        assert np.array_equal(getattr(first, name).counts, getattr(second, name).counts), name
+    assert (first.tau, first.has_counts) == (second.tau, second.has_counts)
+    assert {k: v for k, v in first.stats.items() if k != "partitions"} == {k: v for k, v in second.stats.items() if k != "partitions"}
+
+
+def test_a_folder_of_partitions_gives_the_corpus_of_its_files_joined(tmp_path):
+    paths = _partitioned(tmp_path)
+    parted = load_corpus(paths["members"], paths["lookups"], SETTINGS)
+    whole = load_corpus(paths["whole_members"], paths["whole_lookups"], SETTINGS)
+    assert_same_corpus(parted, whole)
+    assert parted.stats["partitions"] == {"members": 3, "non_members": 4}  # the marker file is no partition
+    assert parted.stats["member_duplicates"] == 3 and parted.stats["non_member_duplicates"] >= 50
+    globbed = load_corpus(paths["members"] / "part-*.txt", paths["lookups"] / "*.parquet", SETTINGS)
+    assert_same_corpus(globbed, whole)
+
+
+def test_partitions_that_cannot_be_used_are_named(tmp_path):
+    paths = _partitioned(tmp_path)
+    with pytest.raises(BadInput, match=r"no file matches .*nothing-\*\.parquet"):
+        load_corpus(paths["members"], paths["lookups"] / "nothing-*.parquet", SETTINGS)
+    pl.DataFrame({"key": ["uncounted"]}).write_parquet(paths["lookups"] / "part-9.parquet")
+    with pytest.raises(BadInput, match=r"partition .*part-9.parquet has no count column while .*part-0.parquet has one"):
+        load_corpus(paths["members"], paths["lookups"], SETTINGS)
+    (paths["lookups"] / "part-9.parquet").unlink()
+    (paths["members"] / "nested").mkdir()
+    with pytest.raises(BadInput, match=r"nested: a folder inside the partitions of"):
+        load_corpus(paths["members"], paths["lookups"], SETTINGS)
+    (paths["members"] / "nested").rmdir()
+    (paths["members"] / "part-1.txt").write_bytes(b"fine\n\nempty line above\n")
+    with pytest.raises(BadInput, match=r"part-1.txt: line 2"):
+        load_corpus(paths["members"], paths["lookups"], SETTINGS)
