@@ -116,7 +116,17 @@ def _stage(name: str, **options):
     retry_condition_fn=retry_on_transient,
 )
 def read_corpus(config: BuildConfig, added: Sequence[bytes] = ()) -> corpus_stage.Corpus:
-    return corpus_stage.load_corpus(config.corpus.members, config.corpus.non_members, config.corpus, added)
+    """The corpus, read here or, with compute.cluster, by the cluster's workers partition by
+    partition (tamis.cluster_corpus: the same corpus)."""
+    paths = (config.corpus.members, config.corpus.non_members, config.corpus, added)
+    if not config.compute.cluster:
+        return corpus_stage.load_corpus(*paths)
+    from distributed import Client  # this task runs in the flow's process, not on a worker
+
+    from tamis.cluster_corpus import load_corpus_on_cluster
+
+    with Client(config.compute.cluster, timeout=CLUSTER_CONNECT_SECONDS) as client:
+        return load_corpus_on_cluster(client, *paths)
 
 
 class Chunk:

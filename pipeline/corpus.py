@@ -754,8 +754,8 @@ def load_corpus(members_path: Path, non_members_path: Path, settings: CorpusSett
         "non_member_rows": non_raw.rows,
         "non_member_duplicates": non_raw.rows - len(non_keys) - conflicts,
         "conflicts": conflicts,
-        "partitions": {"members": len(source_files(members_path)),
-                       "non_members": 0 if sample else len(source_files(non_members_path))},
+        "read": {"by": "driver", "partitions": {"members": len(source_files(members_path)),
+                                                 "non_members": 0 if sample else len(source_files(non_members_path))}},
         **({"sample": sample} if sample else {}),
     }
     return split_corpus(members, non_keys, non_counts, has_counts, stats, settings, non_members_path)

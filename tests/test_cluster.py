@@ -239,3 +239,41 @@ def test_a_scheduler_that_does_not_answer_is_bad_input_before_any_work():
 
     with pytest.raises(BadInput, match="cannot reach the Dask scheduler at 'tcp://127.0.0.1:9'"):
         build.check_cluster("tcp://127.0.0.1:9")
+
+
+def test_the_workers_read_the_partitions_into_the_very_corpus_of_a_local_read(client, tmp_path):
+    """Partitions read, deduplicated and checked for conflicts on the workers, bucket by bucket:
+    the same keys in the same order with the same counts and split as tamis.corpus.load_corpus."""
+    from test_corpus import _partitioned, assert_same_corpus
+
+    from tamis.cluster_corpus import load_corpus_on_cluster
+    from tamis.config import CorpusSettings
+    from tamis.corpus import load_corpus
+
+    paths = _partitioned(tmp_path)
+    settings = CorpusSettings()
+    looked_up = pl_first_key(paths["whole_lookups"])
+    added = [b"added-later", looked_up, b"added-later"]  # an added member looked up: a conflict, no label error
+    local = load_corpus(paths["members"], paths["lookups"], settings, added)
+    on_cluster = load_corpus_on_cluster(client, paths["members"], paths["lookups"], settings, added)
+    assert_same_corpus(on_cluster, local)
+    assert on_cluster.stats["conflicts"] == 1 and on_cluster.stats["added_not_in_export"] == 2
+    assert on_cluster.stats["read"]["driver_keys"] == len(local.members) + local.non_members
+    # a key labelled both ways in the export stops the build with the local read's message
+    (paths["members"] / "part-0.txt").write_bytes((paths["members"] / "part-0.txt").read_bytes() + looked_up + b"\n")
+    strict = CorpusSettings(conflicts="error")
+    with pytest.raises(BadInput) as local_error:
+        load_corpus(paths["members"], paths["lookups"], strict)
+    with pytest.raises(BadInput) as cluster_error:
+        load_corpus_on_cluster(client, paths["members"], paths["lookups"], strict)
+    assert str(cluster_error.value) == str(local_error.value)
+    # a bad partition is named by the worker that read it
+    (paths["lookups"] / "part-2.parquet").write_bytes(b"not parquet")
+    with pytest.raises(BadInput, match="part-2.parquet"):
+        load_corpus_on_cluster(client, paths["members"], paths["lookups"], settings)
+
+
+def pl_first_key(path) -> bytes:
+    import polars as pl
+
+    return pl.read_parquet(path)["key"][0].encode()

@@ -355,7 +355,7 @@ def test_duplicates_and_conflicts_are_counted_in_the_stats(tmp_path):
     corpus = load_corpus(members, non, SETTINGS)
     assert corpus.stats == {"member_rows": 4, "member_duplicates": 1, "non_member_rows": 204,
                             "non_member_duplicates": 3, "conflicts": 1, "added_not_in_export": 0,
-                            "partitions": {"members": 1, "non_members": 1}}
+                            "read": {"by": "driver", "partitions": {"members": 1, "non_members": 1}}}
     parts = corpus.non_member_parts
     counts = {k: int(c) for part in parts for k, c in zip(part.keys, part.counts)}
     assert counts[b"n1"] == 1 + 4 + 5 and b"both" not in counts and len(counts) == 200
@@ -454,7 +454,7 @@ def assert_same_corpus(first, second) -> None:
         assert getattr(first, name).keys == getattr(second, name).keys, name
         assert np.array_equal(getattr(first, name).counts, getattr(second, name).counts), name
     assert (first.tau, first.has_counts) == (second.tau, second.has_counts)
-    assert {k: v for k, v in first.stats.items() if k != "partitions"} == {k: v for k, v in second.stats.items() if k != "partitions"}
+    assert {k: v for k, v in first.stats.items() if k != "read"} == {k: v for k, v in second.stats.items() if k != "read"}
 
 
 def test_a_folder_of_partitions_gives_the_corpus_of_its_files_joined(tmp_path):
@@ -462,7 +462,7 @@ def test_a_folder_of_partitions_gives_the_corpus_of_its_files_joined(tmp_path):
     parted = load_corpus(paths["members"], paths["lookups"], SETTINGS)
     whole = load_corpus(paths["whole_members"], paths["whole_lookups"], SETTINGS)
     assert_same_corpus(parted, whole)
-    assert parted.stats["partitions"] == {"members": 3, "non_members": 4}  # the marker file is no partition
+    assert parted.stats["read"]["partitions"] == {"members": 3, "non_members": 4}  # the marker file is no partition
     assert parted.stats["member_duplicates"] == 3 and parted.stats["non_member_duplicates"] >= 50
     globbed = load_corpus(paths["members"] / "part-*.txt", paths["lookups"] / "*.parquet", SETTINGS)
     assert_same_corpus(globbed, whole)
