@@ -14,12 +14,7 @@ External reference: the normal approximation of the difference of two binomial p
 from __future__ import annotations
 
 import dataclasses
-import json
 import math
-import os
-import subprocess
-import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -29,58 +24,19 @@ import pytest
 for _module in ("dask", "distributed", "prefect_dask", "pandas", "sklearn"):
     pytest.importorskip(_module, reason=f"the cluster path needs {_module} (pip install 'tamis[cluster]')")
 
+from dask_processes import dask_cluster  # noqa: E402
 from small_build import small_config, write_corpus  # noqa: E402
 
 from tamis.config import ComputeSettings  # noqa: E402
 from tamis.loader import open_filter  # noqa: E402
 
-START_SECONDS = 30  # a scheduler and its workers answer within a few seconds on this machine
-
-
-def _dask(*args: str, log: Path) -> subprocess.Popen:
-    """One dask command-line process (its output in `log`)."""
-    command = [str(Path(sys.executable).with_name("dask")), *args]
-    return subprocess.Popen(command, stdout=log.open("wb"), stderr=subprocess.STDOUT, env=os.environ.copy())
-
-
-def _stop(process: subprocess.Popen) -> None:
-    """Stop one process we started, by its own pid."""
-    if process.poll() is None:
-        process.terminate()
-        try:
-            process.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
-
 
 @pytest.fixture(scope="module")
 def scheduler(tmp_path_factory):
-    """The address of a scheduler with two single-threaded worker processes (no nanny: each worker
-    is the process we started), all on 127.0.0.1, no dashboards; stopped by their pids."""
-    folder = tmp_path_factory.mktemp("dask")
-    address_file = folder / "scheduler.json"
-    processes = [_dask("scheduler", "--host", "127.0.0.1", "--port", "0", "--no-dashboard",
-                       "--scheduler-file", str(address_file), log=folder / "scheduler.log")]
-    try:
-        deadline = time.monotonic() + START_SECONDS
-        while not address_file.exists():
-            assert processes[0].poll() is None and time.monotonic() < deadline, (folder / "scheduler.log").read_text()
-            time.sleep(0.2)
-        for i in range(2):
-            processes.append(_dask("worker", "--scheduler-file", str(address_file), "--host", "127.0.0.1", "--no-nanny",
-                                   "--nthreads", "1", "--no-dashboard", "--memory-limit", "3GiB", "--name", f"w{i}",
-                                   log=folder / f"worker{i}.log"))
-        address = json.loads(address_file.read_text())["address"]
-        from distributed import Client
-
-        with Client(address, timeout=START_SECONDS) as client:
-            client.wait_for_workers(2, timeout=START_SECONDS)
-        yield address
-    finally:
-        for process in reversed(processes):
-            _stop(process)
-    assert all(process.poll() is not None for process in processes)
+    """The address of a scheduler with two single-threaded worker processes on 127.0.0.1."""
+    with dask_cluster(tmp_path_factory.mktemp("dask"), workers=2) as started:
+        yield started.address
+    assert all(process.returncode is not None for process in started.processes.values())
 
 
 def _partition(members: Path, lookups: Path, into: Path) -> tuple[Path, Path]:
