@@ -60,11 +60,11 @@ def write_config(folder: Path, members: Path, lookups: Path, train_sample: int |
     return config, store
 
 
-def build(config: Path) -> tuple[float, int]:
-    """Wall seconds and peak resident bytes of one `tamis build CONFIG` in a fresh process."""
+def build(config: Path, *options: str) -> tuple[float, int]:
+    """Wall seconds and peak resident bytes of one `tamis build CONFIG [OPTIONS]` in a fresh process."""
     env = {**os.environ, "PREFECT_LOGGING_LEVEL": "WARNING", "PREFECT_SERVER_ANALYTICS_ENABLED": "false"}
     started = time.perf_counter()
-    child = subprocess.Popen([*TAMIS, "build", str(config)], env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    child = subprocess.Popen([*TAMIS, "build", str(config), *options], env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     _, status, usage = os.wait4(child.pid, 0)
     seconds = time.perf_counter() - started
     out, err = child.stdout.read().decode(), child.stderr.read().decode()
