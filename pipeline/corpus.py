@@ -8,6 +8,9 @@ rather than guessed at). Keys become bytes: UTF-8 of the text unless the corpus 
 with key_encoding = "bytes" (one-key-a-line files, where any byte but newline is allowed, and
 Parquet binary columns). A one-key-a-line file is read by `tamis.keylines`: in bytes mode no byte
 of a key is changed, and a line ending in a carriage return is refused. An empty file holds no keys.
+A source may also be a dataset in partitions: a folder of such files, or a glob pattern of them
+(`source_files`), read one by one in the order of their names and joined, the same corpus as one
+file of them all (on a Dask cluster the workers read them: tamis.cluster_corpus).
 
 Every refusal is a BadInput naming the file, the place and the fix. Places count from 1: "line N" of
 a one-key-a-line or NDJSON file, "row N (line N+1)" of a CSV (its header is line 1; the line is

@@ -28,6 +28,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from tamis import additions, publish
+from tamis.corpus import source_files
 from tamis.artifact import ArtifactError, fsync_directory, load_artifact, write_atomically
 from tamis.errors import BadInput
 
@@ -131,12 +132,9 @@ def unchanged_version(store: Path, provenance: dict) -> int | None:
 
 
 def members_modified_ns(path: Path) -> int:
-    """When the members export last changed: its modification time, the latest of its files for a
-    folder of partitions."""
-    if path.is_dir():
-        times = [entry.stat().st_mtime_ns for entry in path.rglob("*") if entry.is_file()]
-        return max(times, default=path.stat().st_mtime_ns)
-    return path.stat().st_mtime_ns
+    """When the members export last changed: its modification time, the latest of its partitions'
+    for a folder or pattern of partitions (tamis.corpus.source_files)."""
+    return max(entry.stat().st_mtime_ns for entry in source_files(path))
 
 
 def inputs_fields(members: Path) -> dict:

@@ -228,3 +228,18 @@ def test_a_version_published_during_a_build_from_a_later_export_is_not_replaced(
     assert folding.newer_inputs_reason(store, ours, newest_at_start=2) is None  # there before the build: a rebuild
     later = {"members_modified_ns": 9_500, "members_modified_at": "t9500"}
     assert folding.newer_inputs_reason(store, later, newest_at_start=1) is None
+
+
+def test_a_partitioned_export_was_modified_when_its_latest_partition_was(tmp_path):
+    import os
+
+    folder = tmp_path / "members"
+    folder.mkdir()
+    for i, ns in enumerate((3_000_000_000, 9_000_000_000, 5_000_000_000)):
+        part = folder / f"part-{i}.txt"
+        part.write_text("key\n")
+        os.utime(part, ns=(ns, ns))
+    (folder / "_SUCCESS").write_text("")  # a writer's marker, touched last, is no partition
+    assert folding.members_modified_ns(folder) == 9_000_000_000
+    assert folding.members_modified_ns(folder / "part-*.txt") == 9_000_000_000
+    assert folding.members_modified_ns(folder / "part-[02].txt") == 5_000_000_000
