@@ -23,6 +23,7 @@ from __future__ import annotations
 import importlib.util
 import json
 import os
+import resource
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -551,6 +552,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
                     ending["note"] = "refused: nothing published, the version in service stays"
             summary["paths"]["artifact"] = str(folder / publish.ARTIFACT_NAME)
             summary["timings"] = {**stages.timings, "total": round(time.perf_counter() - started, 3)}
+            # the most this process (the driver, on a cluster) held at once (ru_maxrss is in KiB on Linux)
+            summary["memory"] = {"peak_rss_bytes": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}
             finish_reports(folder, summary, figures)
     except BaseException:
         publish.discard_staging(staging)  # nothing to remove once it was published or refused

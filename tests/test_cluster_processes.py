@@ -74,6 +74,8 @@ def test_a_build_on_a_real_scheduler_reads_its_partitions_on_the_workers_and_kee
     assert report["provenance"]["corpus_digest"] == local.report["provenance"]["corpus_digest"]
     assert report["corpus"]["split"] == local.report["corpus"]["split"]
     assert report["heldout"]["keys"] == local.report["heldout"]["keys"]
+    assert report["corpus"]["read"]["driver_keys"] == report["corpus"]["members"] + report["corpus"]["non_members"]
+    assert report["memory"]["peak_rss_bytes"] > 0
 
     cluster_filter = open_filter(config.store.path)  # the stores, opened as a service opens them
     local_filter = open_filter(local_config.store.path)
