@@ -326,6 +326,23 @@ def observed_rows(served: list[dict]) -> list[list[object]]:
     ]
 
 
+def unlike_html(unlike: dict | None) -> list[str]:
+    """Keys unlike the sample (tamis.probes): each family's share of maybe, and the cost of a cap."""
+    if not unlike:
+        return []
+    cap = unlike["cap"]
+    rows = [[name, f"{row['probes']:,}", _percent(row["maybe_rate"])] for name, row in unlike["families"].items()]
+    return [
+        "<h2>Keys unlike the sample</h2>",
+        f"<p>The certified rate (upper bound {html.escape(_percent(unlike['certified_upper']))}) holds for lookups drawn "
+        "like the sample. Families of keys of other shapes, none of them members, were asked of the artifact:</p>",
+        _table(["family", "keys asked", "answered maybe"], rows),
+        f"<p>A cap of {html.escape(_percent(cap['max_region_fpr']))} on every region (regions.max_region_fpr) would bound "
+        f"any family's rate, for {cap['ratio'] - 1:+.1%} planned bytes ({cap['planned_bytes_without']:,} to "
+        f"{cap['planned_bytes_with']:,}); gate.max_unlike_rate refuses an artifact whose worst family is above it.</p>",
+    ]
+
+
 def sample_html(sample: dict | None) -> list[str]:
     if not sample:
         return []
@@ -523,6 +540,7 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         "<p>The lower bound is the fewest bytes any filter without a model can take for these members at the "
         f"target, n log2(1/F) bits; a plain Bloom filter needs about {BLOOM_OVERHEAD:.2f} times that. The learned artifact beats "
         "it only as far as its model tells non-members from members.</p>",
+        *unlike_html(report.get("unlike_keys")),
         *sample_html(report["corpus"].get("sample")),
         "<h2>Drift of the version in service</h2>",
         _pairs(drift_rows(drift, report)),
