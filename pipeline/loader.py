@@ -500,6 +500,8 @@ class ServedFilter:
     def _refresh_every(self, seconds: float) -> None:
         while not self._closed.wait(seconds):
             try:
+                if self._traffic is not None:
+                    self._traffic.tick()
                 self.refresh()
             except Exception:  # a thread must go on: the next interval tries again
                 LOG.exception(f"{self.store}: refreshing the version in service failed; version {self.version} stays")
