@@ -264,6 +264,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("planned for (aim)", _percent(report["aim_fpr"])),
         ("members", _count(corpus["members"])),
         *corpus_cleaning_rows(corpus),
+        *additions_rows(report.get("additions")),
         ("non-members (train / validation / held-out)",
          f"{corpus['non_members']:,} ({split['train']:,} / {split['validation']:,} / {split['heldout']:,})"),
         ("lookups", _count(corpus["lookups"]) + ("" if corpus["has_counts"] else " (no counts: one a key)")),
@@ -289,6 +290,17 @@ def size_parts_text(size: dict) -> str:
     """The artifact's three parts, which add up to its size (reports before `layout_bytes` derive it)."""
     layout = size.get("layout_bytes", size["total_bytes"] - size["model_bytes"] - size["filter_bytes"])
     return f"{size['model_bytes']:,} / {size['filter_bytes']:,} / {layout:,}"
+
+
+def additions_rows(folded: dict | None) -> list[tuple[str, object]]:
+    """Members added between builds (`tamis add`) that this build folded in."""
+    if not folded:
+        return []
+    return [
+        ("members added between builds, folded in", f"{folded['keys']:,} from {folded['batches']:,} batches "
+                                                     f"(through batch {folded['folded_through']})"),
+        ("of them not in today's export (kept as members)", _count(folded["not_in_export"])),
+    ]
 
 
 def corpus_cleaning_rows(corpus: dict) -> list[tuple[str, object]]:

@@ -322,3 +322,12 @@ def test_keys_unlike_the_sample_are_measured_and_shown_with_the_cost_of_a_cap(bu
     text = text_of(parse(first.page.read_text(encoding="utf-8")))
     assert "Keys unlike the sample" in text and "host names" in text
     assert "keys unlike the sample answered maybe" in summary_text(first.report, first.folder)
+
+
+def test_the_page_says_what_additions_the_build_folded_in(builds):
+    from tamis.report_page import page_html
+
+    report = {**builds[0].report, "additions": {"folded_through": 7, "batches": 3, "keys": 500, "not_in_export": 12}}
+    rows = {row.findtext("th"): row.findtext("td") for row in parse(page_html(report, {})).iter("tr")}
+    assert rows["members added between builds, folded in"] == "500 from 3 batches (through batch 7)"
+    assert rows["of them not in today's export (kept as members)"] == "12"
