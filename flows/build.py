@@ -50,6 +50,7 @@ from tamis.loader import open_filter
 from tamis.model import ModelChoice, fit_model, fit_model_on_cluster
 from tamis.package import package_artifact
 from tamis.planning import PlanScores, SettledPlan, settle_plan, training_keys
+from tamis.probes import CapCost, UnlikeKeys, cap_cost, measure_unlike_keys
 from tamis.progress import Progress, StageEvent, no_progress
 from tamis.provenance import build_provenance
 from tamis.query import region_of
@@ -339,6 +340,17 @@ def verify_package(run_chunks: ChunkMap, path: Path, corpus, config: BuildConfig
                                verify.strata_of(corpus), config.gate.confidence, regions, len(open_filter(path).boundaries) + 1)
 
 
+def probe_unlike(path: Path, corpus, config: BuildConfig) -> UnlikeKeys:
+    """Families of keys unlike the sample asked of the written artifact (`tamis.probes`)."""
+    return measure_unlike_keys(open_filter(path).contains_many, corpus.members, config.corpus.split_seed)
+
+
+def price_cap(scores: PlanScores, settled: SettledPlan, config: BuildConfig) -> CapCost:
+    """What a cap on every region's rate would cost the settled plan (`tamis.probes.cap_cost`)."""
+    rate = settled.rounds[settled.chosen].rate
+    return cap_cost(scores.members, scores.nonmembers, scores.weights, rate, config.regions, config.target.fpr)
+
+
 @_stage("drift")
 def measure_in_service(store: Path, corpus, config: BuildConfig) -> Drift:
     return measure_drift(store, corpus, config.gate.confidence)
@@ -473,6 +485,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
         plan_scores = score_plan_keys(stages.chunks("regions"), corpus, X, choice.forest, config)
     with stages.stage("filters"):
         settled = settle(stages.chunks("filters"), corpus, plan_scores, aim, config)
+        capped = price_cap(plan_scores, settled, config)
     scores = ScoreSample(plan_scores.members, plan_scores.nonmembers, plan_scores.weights)
     learned = Candidate(choice, settled, scores)
     with stages.stage("plain"):
@@ -496,6 +509,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
         package_args = (artifact, spec, choice.forest, plan, filters, config.filters.hash_seed, provenance)
         with stages.stage("verify"):
             checked = verify_package(stages.chunks("verify"), artifact, corpus, config)
+            unlike = probe_unlike(artifact, corpus, config)
         # the measured figures go into the header; sections are unchanged, so what was verified is what ships
         write_package(*package_args, {**checked.heldout.as_report(), "target_fpr": config.target.fpr})
         additions.write_members(staging, corpus.members)  # what a rollback to this version reads
@@ -513,6 +527,7 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
                 baseline=drift.baseline(),
                 comparison=comparison,
                 plan=verify.PlanFigures(aim, chosen.settled.estimate, chosen.settled.allowed),
+                unlike=unlike.worst,
             )
             older = None if replace_newer else folding.newer_inputs_reason(store, inputs, newest_at_start)
             passed = not verify.refusal_reasons(checks) and older is None
@@ -538,6 +553,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
             )
             summary["additions"] = folding.report_fields(pending, corpus.stats["added_not_in_export"])
             summary["inputs"] = inputs
+            summary["unlike_keys"] = {**unlike.as_report(), "certified_upper": checked.heldout.fpr_upper,
+                                      "cap": capped.as_report()}
             if older is not None:
                 summary["gate"] = {**summary["gate"], "passed": False, "reasons": [*summary["gate"]["reasons"], older]}
             figures = stages.run("report", write_reports, staging, summary, scores)

@@ -200,6 +200,20 @@ def additions_text(folded: dict) -> str:
     return line
 
 
+def unlike_text(unlike: dict | None) -> list[str]:
+    """Keys unlike the sample: each probe family's share of maybe beside the certified bound, and
+    what a cap would cost (reports before the probes have none)."""
+    if not unlike:
+        return []
+    families = ", ".join(f"{name} {row['maybe_rate']:.2%}" for name, row in unlike["families"].items())
+    cap = unlike["cap"]
+    return [
+        f"  keys unlike the sample answered maybe: {families} (certified upper bound {unlike['certified_upper']:.4%})",
+        f"  a cap of {cap['max_region_fpr']:.2%} on every region (regions.max_region_fpr) would bound them, for "
+        f"{cap['ratio'] - 1:+.1%} planned bytes ({cap['planned_bytes_without']:,} -> {cap['planned_bytes_with']:,})",
+    ]
+
+
 def summary_text(report: dict, folder: Path) -> str:
     from tamis.report_page import size_parts_text
 
@@ -222,6 +236,7 @@ def summary_text(report: dict, folder: Path) -> str:
         f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
         f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
     ]
+    lines += unlike_text(report.get("unlike_keys"))
     if "plain_filter" in report:
         lines.append(plain_filter_text(report["plain_filter"]))
     if "drift" in report:

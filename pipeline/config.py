@@ -180,6 +180,10 @@ class GateSettings:
     # say so, "publish_plain" publish the plain filter instead, or "refuse" both. Either artifact
     # opens with the same loader.
     when_model_does_not_pay: str = field(default="publish", metadata={"choices": ("publish", "publish_plain", "refuse")})
+    # rule max_unlike_rate: the largest share of "maybe" the artifact may give any family of keys
+    # unlike the sample (tamis.probes: random strings, members with a character changed, hex
+    # digests, numbers, host names); 0 is off. A cap (regions.max_region_fpr) is how to meet it.
+    max_unlike_rate: float = field(default=0.0, metadata={"range": (0.0, 1.0)})
 
 
 @dataclass(frozen=True)

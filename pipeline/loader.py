@@ -26,6 +26,11 @@ asked (`refresh()`) or every `refresh_seconds`:
 A served store also answers "maybe" for every key added to it (`tamis add`, `tamis.additions`)
 after the version in service was built; a refresh reads new batches without reopening the artifact.
 
+A served store can record its traffic (`tamis.traffic`): `open_filter(store, sample_folder=F)`
+writes a lookup sample into F for the nightly build, and `confirm(key, member)` after each check of
+a "maybe" feeds `observed()`, the false-positive rate the service really gets, with a warning when
+it rises above the certified bound.
+
 A "maybe" (True) is only a hint: confirm it against the authoritative set before acting on it.
 """
 
@@ -500,6 +505,8 @@ class ServedFilter:
     def _refresh_every(self, seconds: float) -> None:
         while not self._closed.wait(seconds):
             try:
+                if self._traffic is not None:
+                    self._traffic.tick()
                 self.refresh()
             except Exception:  # a thread must go on: the next interval tries again
                 LOG.exception(f"{self.store}: refreshing the version in service failed; version {self.version} stays")

@@ -15,18 +15,25 @@ families drawn from a seeded generator, none of them a member:
 and reports each family's share of "maybe" beside the certified rate (a share near 1 says the
 filter does not screen that shape of key at all). The gate rule max_unlike_rate (off by default)
 refuses an artifact whose worst family is above it; the region cap `regions.max_region_fpr`
-bounds every region's rate and so every family's, at a cost in bytes the report states.
+bounds every region's rate and so every family's, at a cost in bytes the report states for a cap
+of CAP_TARGETS x the target (`cap_cost`: the plan at the settled rate priced with and without it).
 """
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
+from tamis.regions import RegionSettings, plan_regions
+
 # Keys a family: the share of maybe is then known to within about +-0.7% at 95% (binomial, p = 0.5).
 PROBES_PER_FAMILY = 20_000
+# The cap whose cost the report states: every region at most ten times the target, so a key of any
+# shape passes at most at ten times the rate certified for the sample's shapes.
+CAP_TARGETS = 10
 _ALPHABET = np.frombuffer(b"0123456789abcdefghijklmnopqrstuvwxyz", dtype=np.uint8)
 
 
@@ -105,3 +112,27 @@ def measure_unlike_keys(answer: Callable[[list[bytes]], np.ndarray], members: li
     probes = probe_keys(members, seed, per_family)
     rates = {name: float(np.mean(answer(keys))) if keys else 0.0 for name, keys in probes.items()}
     return UnlikeKeys(rates, {name: len(keys) for name, keys in probes.items()})
+
+
+@dataclass(frozen=True)
+class CapCost:
+    """The region plan at the settled rate without a cap and with `regions.max_region_fpr = cap`:
+    their priced bytes (filters, sections and regions, as `plan_regions` prices them)."""
+
+    cap: float
+    bytes_without: int
+    bytes_with: int
+
+    def as_report(self) -> dict:
+        return {"max_region_fpr": self.cap, "planned_bytes_without": self.bytes_without,
+                "planned_bytes_with": self.bytes_with, "ratio": self.bytes_with / self.bytes_without}
+
+
+def cap_cost(member_scores, nonmember_scores, nonmember_weights, rate: float, settings: RegionSettings,
+             target: float) -> CapCost:
+    """What capping every region at CAP_TARGETS x the target would cost the plan at `rate`."""
+    cap = min(1.0, CAP_TARGETS * target)
+    plans = [plan_regions(member_scores, nonmember_scores, nonmember_weights, rate,
+                          dataclasses.replace(settings, max_region_fpr=min(limit, settings.max_region_fpr)), refine=False)
+             for limit in (1.0, cap)]
+    return CapCost(cap, *(plan.estimated_total_bits // 8 for plan in plans))

@@ -264,6 +264,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("planned for (aim)", _percent(report["aim_fpr"])),
         ("members", _count(corpus["members"])),
         *corpus_cleaning_rows(corpus),
+        *additions_rows(report.get("additions")),
         ("non-members (train / validation / held-out)",
          f"{corpus['non_members']:,} ({split['train']:,} / {split['validation']:,} / {split['heldout']:,})"),
         ("lookups", _count(corpus["lookups"]) + ("" if corpus["has_counts"] else " (no counts: one a key)")),
@@ -289,6 +290,17 @@ def size_parts_text(size: dict) -> str:
     """The artifact's three parts, which add up to its size (reports before `layout_bytes` derive it)."""
     layout = size.get("layout_bytes", size["total_bytes"] - size["model_bytes"] - size["filter_bytes"])
     return f"{size['model_bytes']:,} / {size['filter_bytes']:,} / {layout:,}"
+
+
+def additions_rows(folded: dict | None) -> list[tuple[str, object]]:
+    """Members added between builds (`tamis add`) that this build folded in."""
+    if not folded:
+        return []
+    return [
+        ("members added between builds, folded in", f"{folded['keys']:,} from {folded['batches']:,} batches "
+                                                     f"(through batch {folded['folded_through']})"),
+        ("of them not in today's export (kept as members)", _count(folded["not_in_export"])),
+    ]
 
 
 def corpus_cleaning_rows(corpus: dict) -> list[tuple[str, object]]:
@@ -323,6 +335,23 @@ def observed_rows(served: list[dict]) -> list[list[object]]:
          f"{row['lookups']:,}", _percent(row["rate"]), f"{_percent(row['rate_low'])} to {_percent(row['rate_high'])}",
          f"{row['unconfirmed']:,}"]
         for row in served
+    ]
+
+
+def unlike_html(unlike: dict | None) -> list[str]:
+    """Keys unlike the sample (tamis.probes): each family's share of maybe, and the cost of a cap."""
+    if not unlike:
+        return []
+    cap = unlike["cap"]
+    rows = [[name, f"{row['probes']:,}", _percent(row["maybe_rate"])] for name, row in unlike["families"].items()]
+    return [
+        "<h2>Keys unlike the sample</h2>",
+        f"<p>The certified rate (upper bound {html.escape(_percent(unlike['certified_upper']))}) holds for lookups drawn "
+        "like the sample. Families of keys of other shapes, none of them members, were asked of the artifact:</p>",
+        _table(["family", "keys asked", "answered maybe"], rows),
+        f"<p>A cap of {html.escape(_percent(cap['max_region_fpr']))} on every region (regions.max_region_fpr) would bound "
+        f"any family's rate, for {cap['ratio'] - 1:+.1%} planned bytes ({cap['planned_bytes_without']:,} to "
+        f"{cap['planned_bytes_with']:,}); gate.max_unlike_rate refuses an artifact whose worst family is above it.</p>",
     ]
 
 
@@ -523,6 +552,7 @@ def page_html(report: dict, figures: dict[str, str]) -> str:
         "<p>The lower bound is the fewest bytes any filter without a model can take for these members at the "
         f"target, n log2(1/F) bits; a plain Bloom filter needs about {BLOOM_OVERHEAD:.2f} times that. The learned artifact beats "
         "it only as far as its model tells non-members from members.</p>",
+        *unlike_html(report.get("unlike_keys")),
         *sample_html(report["corpus"].get("sample")),
         "<h2>Drift of the version in service</h2>",
         _pairs(drift_rows(drift, report)),

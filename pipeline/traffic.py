@@ -350,6 +350,14 @@ class TrafficRecorder:
         name = f"{stamp}-{self._host}-{self._pid}-{self._instance}-{self._files}{SAMPLE_SUFFIX}"
         write_atomically(self.folder / name, [encode_sample(payload)])
 
+    def tick(self) -> None:
+        """Close the window and the period that have ended by now, with no lookup to trigger it (a
+        served filter's refresh thread calls this, so an idle service still writes its hour)."""
+        with self._lock:
+            flush = self._roll(self._clock())
+        if flush is not None:
+            self._write(*flush)
+
     def flush(self) -> None:
         """Close the current window and period now and write the period's file."""
         with self._lock:

@@ -677,6 +677,7 @@ def gate_checks(
     baseline: Baseline | None,
     comparison: PlainComparison | None = None,
     plan: PlanFigures | None = None,
+    unlike: tuple[str, float] | None = None,
 ) -> list[GateCheck]:
     """Every gate rule checked after the artifact is written, in a fixed order (model_pays only
     when the plain filter was built to compare with); `plan` words the advice of a refusal by
@@ -689,9 +690,23 @@ def gate_checks(
         _check_size_growth(total_bytes, settings.max_size_growth, baseline),
         _check_member_drop(members, settings.max_member_drop, baseline),
     ]
+    if unlike is not None:
+        checks.append(_check_unlike_rate(*unlike, settings.max_unlike_rate))
     if comparison is not None:
         checks.append(_check_model_pays(comparison, settings.when_model_does_not_pay))
     return checks
+
+
+def _check_unlike_rate(family: str, rate: float, limit: float) -> GateCheck:
+    """Rule max_unlike_rate: the worst family of keys unlike the sample (`tamis.probes`)."""
+    if not limit:
+        return GateCheck("max_unlike_rate", True, rate, None,
+                         f"off (gate.max_unlike_rate = 0); the worst family, {family}, is answered maybe {rate:.2%}")
+    if rate > limit:
+        return GateCheck("max_unlike_rate", False, rate, limit,
+                         f"keys unlike the sample ({family}) are answered maybe {rate:.2%}, over the limit of {limit:.2%}; "
+                         f"cap the regions (regions.max_region_fpr, at most the limit) or rebuild from a sample holding such keys")
+    return GateCheck("max_unlike_rate", True, rate, limit, f"worst family {family} at {rate:.2%}, limit {limit:.2%}")
 
 
 def refusal_reasons(checks: list[GateCheck]) -> list[str]:

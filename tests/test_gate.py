@@ -228,3 +228,13 @@ def test_the_tail_allowance_and_the_headroom_of_a_built_outcome_agree():
     # more heavy false positives leave less room for the tail, and too many leave none
     assert tail_allowance(TARGET, strata, check, 0.95, 2.0, 4 * heavy_fp) < tail_allowance(TARGET, strata, check, 0.95, 2.0, heavy_fp)
     assert tail_allowance(TARGET, strata, check, 0.95, 2.0, 0.02 * strata.lookups) is None
+
+
+def test_the_unlike_keys_rule_is_off_by_default_and_refuses_above_its_limit():
+    from tamis.verify import _check_unlike_rate
+
+    off = _check_unlike_rate("hex digests", 0.207, 0.0)
+    assert off.passed and off.limit is None and "20.70%" in off.detail
+    assert _check_unlike_rate("hex digests", 0.05, 0.1).passed
+    refused = _check_unlike_rate("hex digests", 0.207, 0.1)
+    assert not refused.passed and "regions.max_region_fpr" in refused.detail and "hex digests" in refused.detail

@@ -40,3 +40,23 @@ def test_the_measured_share_is_the_filters_share_within_binomial_error():
     assert exact.worst[1] == 0.0
     always = measure_unlike_keys(lambda keys: np.ones(len(keys), dtype=bool), MEMBERS, seed=1, per_family=1_000)
     assert always.as_report()["worst_rate"] == 1.0
+
+
+def test_a_cap_never_makes_the_plan_cheaper_and_its_cost_is_the_plan_with_it():
+    """The capped plan solves the same problem with one more constraint (every f_i <= cap), so its
+    priced bytes are at least the uncapped plan's; both are plan_regions' own figures."""
+    from tamis.probes import cap_cost
+    from tamis.regions import RegionSettings, plan_regions
+
+    rng = np.random.default_rng(2)
+    members = rng.normal(3.0, 1.0, 4_000).round(3) * 1000
+    others = rng.normal(0.0, 1.0, 40_000).round(3) * 1000
+    weights = rng.zipf(2.0, 40_000).astype(float)
+    settings = RegionSettings(segments=200)
+    cost = cap_cost(members.astype(np.int64), others.astype(np.int64), weights, 0.01, settings, target=0.01)
+    assert cost.cap == pytest.approx(0.1)
+    assert cost.bytes_with >= cost.bytes_without
+    capped = plan_regions(members.astype(np.int64), others.astype(np.int64), weights, 0.01,
+                          RegionSettings(segments=200, max_region_fpr=0.1), refine=False)
+    assert cost.bytes_with == capped.estimated_total_bits // 8
+    assert capped.fprs.max() <= 0.1

@@ -306,3 +306,28 @@ def test_the_size_parts_add_up_and_the_cleaning_is_said(builds):
     dirty = {**report, "corpus": {**corpus, "member_duplicates": 5_000, "conflicts": 100}}
     assert "repeated rows merged: 5,000 member" in summary_text(dirty, first.folder)
     assert "keys on both sides kept as members: 100" in summary_text(dirty, first.folder)
+
+
+def test_keys_unlike_the_sample_are_measured_and_shown_with_the_cost_of_a_cap(builds):
+    from tamis.cli import summary_text
+    from tamis.probes import FAMILIES
+
+    first, _ = builds
+    unlike = first.report["unlike_keys"]
+    assert set(unlike["families"]) == set(FAMILIES)
+    assert all(0.0 <= row["maybe_rate"] <= 1.0 and row["probes"] > 0 for row in unlike["families"].values())
+    assert unlike["cap"]["planned_bytes_with"] >= unlike["cap"]["planned_bytes_without"]
+    (rule,) = [c for c in first.report["gate"]["checks"] if c["rule"] == "max_unlike_rate"]
+    assert rule["passed"] and rule["value"] == unlike["worst_rate"]
+    text = text_of(parse(first.page.read_text(encoding="utf-8")))
+    assert "Keys unlike the sample" in text and "host names" in text
+    assert "keys unlike the sample answered maybe" in summary_text(first.report, first.folder)
+
+
+def test_the_page_says_what_additions_the_build_folded_in(builds):
+    from tamis.report_page import page_html
+
+    report = {**builds[0].report, "additions": {"folded_through": 7, "batches": 3, "keys": 500, "not_in_export": 12}}
+    rows = {row.findtext("th"): row.findtext("td") for row in parse(page_html(report, {})).iter("tr")}
+    assert rows["members added between builds, folded in"] == "500 from 3 batches (through batch 7)"
+    assert rows["of them not in today's export (kept as members)"] == "12"

@@ -154,3 +154,12 @@ def test_a_shift_to_unlike_keys_is_warned_of_within_one_window_and_steady_traffi
         assert served.observed()["alarms"] == 1
         (record,) = caplog.records
         assert f"above version {served.version}'s certified upper bound" in record.getMessage()
+
+
+def test_show_prints_the_rate_observed_in_service_beside_the_certified_one(fed, capsys):
+    from tamis import cli
+
+    assert cli.main(["show", str(fed["store"])]) == 0
+    shown = capsys.readouterr().out
+    assert "observed in service (sample files of the last day in" in shown
+    assert "version 1: certified" in shown and "observed in service" in shown

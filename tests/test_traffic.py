@@ -199,3 +199,14 @@ def test_observed_gives_the_rate_and_its_interval_per_window_and_since_start():
     last = recorder.observed(seconds=300)
     assert last["lookups"] == 1000 and last["false_positives"] == 10
     assert since["versions"][0]["version"] == 3
+
+
+def test_an_idle_recorder_still_writes_its_period_when_ticked(tmp_path):
+    clock = Clock()
+    recorder = TrafficRecorder(tmp_path, 1.0, clock=clock, period_seconds=3600, window_seconds=300)
+    recorder.record_one(SERVED, b"only", True)
+    clock.now += 3601
+    assert not sample_files(tmp_path)
+    recorder.tick()  # no lookup since: the refresh thread's tick writes the hour
+    (written,) = sample_files(tmp_path)
+    assert decode_sample(written, written.read_bytes())["keys"] == [b"only"]
