@@ -61,7 +61,7 @@ def csv_text(text: str) -> bytes:
 BAD = [
     Case("missing file", members="absent.txt", says=("absent.txt", "no such file", "check the path")),
     Case("missing table", non_members="absent.parquet", says=("absent.parquet", "no such file")),
-    Case("a folder, not a file", members="a_folder", files={"a_folder": "folder"}, says=("a_folder", "is a folder, not a file")),
+    Case("an empty folder", members="a_folder", files={"a_folder": "folder"}, says=("a_folder", "is a folder holding no key files")),
     Case("not parquet", non_members="fake.parquet", files={"fake.parquet": b"key,count\na,1\n"},
          says=("fake.parquet", "not a readable Parquet file", "real format")),
     Case("csv with a broken quote", non_members="quote.csv", files={"quote.csv": csv_text('key,count\nok,1\n"open,2\nnext,3\n')},
