@@ -200,6 +200,12 @@ def additions_text(folded: dict) -> str:
     return line
 
 
+def unverified_text(agreement: dict) -> list[str]:
+    """A line per query path the verify stage could not check, and what follows for a service."""
+    return [f"  NOT VERIFIED: the {name} path ({why}); services answer this artifact on the "
+            f"{', '.join(agreement['verified_paths'])} path only" for name, why in agreement.get("not_verified", {}).items()]
+
+
 def summary_text(report: dict, folder: Path) -> str:
     from tamis.report_page import size_parts_text
 
@@ -221,6 +227,7 @@ def summary_text(report: dict, folder: Path) -> str:
         *strata_lines(report.get("strata")),
         f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
         f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
+        *unverified_text(report["answer_paths"]),
     ]
     if "plain_filter" in report:
         lines.append(plain_filter_text(report["plain_filter"]))

@@ -69,16 +69,17 @@ def query_tables(features: int, bias: int, parts: dict[str, np.ndarray]) -> np.n
 
 
 def _numba():
+    """numba and None, or None and why the compiled path is off."""
     if os.environ.get(NUMPY_ONLY_VARIABLE, "0") not in ("", "0"):
-        return None
+        return None, f"{NUMPY_ONLY_VARIABLE} is set"
     try:
         import numba
     except ImportError:
-        return None
-    return numba
+        return None, "numba is not installed (pip install 'tamis[fast]')"
+    return numba, None
 
 
-_NUMBA = _numba()
+_NUMBA, DISABLED_BECAUSE = _numba()
 ENABLED = _NUMBA is not None
 
 if ENABLED:

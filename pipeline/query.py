@@ -375,11 +375,16 @@ def default_path() -> str:
     return available_paths()[-1]
 
 
-def query_path(tables: QueryTables, name: str) -> NumpyPath | CompiledPath:
-    """The one switch between the two implementations of the query path."""
+def check_path(name: str) -> None:
+    """ValueError unless this process can run the answer path `name`."""
     if name not in available_paths():
         raise ValueError(
             f"answer path {name!r} is not available here (available: {list(available_paths())}; "
             f"the compiled path needs numba, pip install 'tamis[fast]', and {compiled.NUMPY_ONLY_VARIABLE} unset)"
         )
+
+
+def query_path(tables: QueryTables, name: str) -> NumpyPath | CompiledPath:
+    """The one switch between the two implementations of the query path."""
+    check_path(name)
     return CompiledPath(tables) if name == "compiled" else NumpyPath(tables)

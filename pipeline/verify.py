@@ -49,7 +49,9 @@ from scipy import stats
 from tamis.config import GateSettings
 from tamis.corpus import Corpus
 from tamis.errors import BadInput
-from tamis.loader import MembershipFilter, answer_paths
+from tamis import compiled
+from tamis.loader import SINGLE_KEY_SUFFIX, MembershipFilter, answer_paths
+from tamis.query import ANSWER_PATHS
 
 
 def gamma_upper(total, variance, max_weight, confidence: float):
@@ -352,9 +354,22 @@ class PathAgreement:
     members_differing: int
     nonmembers_differing: int
 
+    @property
+    def query_paths(self) -> tuple[str, ...]:
+        """The query paths ("numpy", "compiled") whose batch and single-key calls were both checked:
+        what the artifact records as verified (`tamis.format.VERIFIED_PATHS_FIELD`)."""
+        return tuple(name for name in ANSWER_PATHS if name in self.paths and name + SINGLE_KEY_SUFFIX in self.paths)
+
+    @property
+    def not_verified(self) -> dict[str, str]:
+        """Each query path left unchecked, and why (a service with numba answers such an artifact on
+        the numpy path)."""
+        return {name: compiled.DISABLED_BECAUSE or "not run" for name in ANSWER_PATHS if name not in self.query_paths}
+
     def as_report(self) -> dict:
         return {"paths": list(self.paths), "members": self.members, "nonmembers": self.nonmembers,
-                "members_differing": self.members_differing, "nonmembers_differing": self.nonmembers_differing}
+                "members_differing": self.members_differing, "nonmembers_differing": self.nonmembers_differing,
+                "verified_paths": list(self.query_paths), "not_verified": self.not_verified}
 
 
 def _differing(answers: np.ndarray) -> int:

@@ -15,9 +15,10 @@ from tamis.loader import open_filter
 
 # SOURCE_DATE_EPOCH for the build time: 2026-12-01T00:00:00Z.
 BUILD_EPOCH = "1796083200"
-# xxh3-64 of the artifact, recorded with LightGBM 4.7.0 and numpy 2.4 (format 2.1, with a fuse region and
-# provenance.additions_through; d7b2b265aea6cb7f as format 2.0).
-GOLDEN_DIGEST = "efdc4b14688cca54"
+# xxh3-64 of the artifact, recorded with LightGBM 4.7.0 and numpy 2.4 (format 2.2, with a fuse region and
+# provenance.additions_through, not verified so without verified_paths; efdc4b14688cca54 as format 2.1,
+# d7b2b265aea6cb7f as format 2.0).
+GOLDEN_DIGEST = "d0476659774c9947"
 
 
 def test_the_fixed_build_has_the_golden_digest(tmp_path, monkeypatch):

@@ -9,9 +9,11 @@ import pytest
 from scipy import stats
 
 from golden_build import write_fixed_corpus
+from tamis import compiled
 from tamis.config import GateSettings
 from tamis.corpus import Corpus, KeySet
 from tamis.loader import MembershipFilter, answer_paths, open_filter
+from tamis.query import available_paths
 from tamis.verify import (
     Strata,
     aim_fpr,
@@ -55,6 +57,9 @@ def test_every_member_and_a_sample_of_non_members_go_through_every_answer_path(r
     checked, reasons = _verdict(reference["members"], reference["heldout"])
     assert checked.false_negatives == 0 and reasons == []
     assert checked.paths.paths == answer_paths() and len(answer_paths()) >= 2
+    # what the artifact will record as verified, and what was not with why
+    assert checked.paths.query_paths == available_paths()
+    assert checked.paths.not_verified == ({} if compiled.ENABLED else {"compiled": compiled.DISABLED_BECAUSE})
     assert checked.paths.members == len(reference["members"])
     assert checked.paths.nonmembers == len(reference["heldout"].keys)  # below the sample cap: all of them
     assert checked.paths.members_differing == checked.paths.nonmembers_differing == 0
