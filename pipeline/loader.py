@@ -185,8 +185,10 @@ class MembershipFilter:
         """This filter answering on `answer_path` ("numpy", the reference, or "compiled", which
         needs numba); both give the same answers. ValueError for a path this process cannot run.
         A path the build did not verify (`verified_paths`) answers only when named like this."""
-        chosen = dataclasses.replace(self, answer_path=answer_path)
-        chosen._path.warm_up()
+        on_path = query_path(self.tables, answer_path)
+        chosen = dataclasses.replace(self, answer_path=answer_path, tables=on_path.tables)  # the tables it reads
+        chosen.__dict__["_path"] = on_path
+        on_path.warm_up()
         return chosen
 
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
