@@ -632,6 +632,11 @@ class ServedFilter:
     # What is served: cheap reads of the version served.
 
     @property
+    def path(self) -> Path:
+        """The artifact file of the version served (the store folder when none could be opened)."""
+        return self._current().filter.path
+
+    @property
     def version(self) -> int | None:
         return self._served.version
 
