@@ -227,7 +227,7 @@ def summary_text(report: dict, folder: Path) -> str:
         *strata_lines(report.get("strata")),
         f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
         f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
-        *unverified_text(report["answer_paths"]),
+        *unverified_text(report.get("answer_paths", {})),
     ]
     if "plain_filter" in report:
         lines.append(plain_filter_text(report["plain_filter"]))

@@ -272,7 +272,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("held-out effective sample", f"{held['effective_sample']:,.1f}"),
         ("expected rate on validation lookups", _percent(report["expected_fpr"])),
         ("false negatives", report["false_negatives"]),
-        ("answer paths verified (every member)", verified_paths_text(report["answer_paths"])),
+        ("answer paths verified (every member)", verified_paths_text(report.get("answer_paths", {}))),
         ("artifact bytes", _count(size["total_bytes"])),
         ("model / filters / header and layout bytes", size_parts_text(size)),
         ("bits per member", f"{size['bits_per_member']:.2f}"),
