@@ -6,7 +6,9 @@ Runs `tamis demo` into DIR (a temporary folder unless given) in a fresh process 
 stage's seconds from the build's report.json, with the verify stage's share of the whole build
 (the aim: at most a quarter). Then it opens the published artifact and times each answer path of
 the loader (`tamis.loader.answer_paths`: each query path's batch and single-key call) over every
-member, as the verify stage answers them, in microseconds a key: where verification's time goes.
+member, as the verify stage answers them, in microseconds a key (best of 3, in a fresh process):
+where verification's time goes. With --baseline-root DIR (a folder holding another `tamis` package,
+e.g. the code before a change) the paths are timed for it too, in turn, with the ratio.
 Run it on a quiet machine: the other load shows in every figure.
 """
 
@@ -14,11 +16,36 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
+
+
+# Seconds of each answer path over every member (argv: artifact, member file), best of 3.
+PROBE = r"""
+import json, sys, time
+from tamis.loader import answer_paths, open_filter
+members = open(sys.argv[2], "rb").read().splitlines()
+opened = open_filter(sys.argv[1])
+seconds = {}
+for path in answer_paths():
+    runs = []
+    for _ in range(3):
+        started = time.perf_counter()
+        assert opened.answers_through(path, members).all()
+        runs.append(time.perf_counter() - started)
+    seconds[path] = min(runs)
+print(json.dumps(seconds))
+"""
+
+
+def path_seconds(artifact: Path, members: Path, root: Path | None) -> dict[str, float]:
+    env = dict(os.environ, **({"PYTHONPATH": str(root)} if root else {}))
+    done = subprocess.run([sys.executable, "-c", PROBE, str(artifact), str(members)], capture_output=True, text=True,
+                          env=env, check=True)
+    return json.loads(done.stdout)
 
 
 def main() -> int:
@@ -26,6 +53,7 @@ def main() -> int:
     parser.add_argument("--dir", type=Path, help="the demo's folder (default: a temporary one)")
     parser.add_argument("--members", type=int, default=200_000)
     parser.add_argument("--non-members", type=int, default=2_000_000)
+    parser.add_argument("--baseline-root", type=Path, help="a folder holding another `tamis` package to compare")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as work:
         folder = (args.dir or Path(work) / "demo").resolve()
@@ -42,16 +70,16 @@ def main() -> int:
             print(f"  {stage:10s} {seconds:7.2f} s  {seconds / total:6.1%}")
         print(f"verify's share of the build: {timings['verify'] / total:.1%} (aim: at most 25%)")
 
-        from tamis.loader import answer_paths, open_filter
-
-        members = (folder / "banned_handles.txt").read_bytes().splitlines()
-        opened = open_filter(version / "artifact.tamis")
-        print(f"every member ({len(members):,}) through each answer path:")
-        for path in answer_paths():
-            started = time.perf_counter()
-            answers = opened.answers_through(path, members)
-            seconds = time.perf_counter() - started
-            print(f"  {path:16s} {seconds:6.2f} s  {seconds / len(members) * 1e6:6.2f} us a key  all maybe: {bool(answers.all())}")
+        members = folder / "banned_handles.txt"
+        count = len(members.read_bytes().splitlines())
+        ours = path_seconds(version / "artifact.tamis", members, None)
+        base = path_seconds(version / "artifact.tamis", members, args.baseline_root) if args.baseline_root else None
+        print(f"every member ({count:,}) through each answer path (best of 3):")
+        for path, seconds in ours.items():
+            line = f"  {path:16s} {seconds:6.2f} s  {seconds / count * 1e6:6.2f} us a key"
+            if base and path in base:
+                line += f"   baseline {base[path] / count * 1e6:6.2f} us a key, ratio {seconds / base[path]:.2f}"
+            print(line)
     return 0
 
 
