@@ -291,7 +291,7 @@ class DegradedFilter:
 
     degraded = True
     fpr = fpr_upper = target = built_at = None
-    verified_paths: tuple[str, ...] = ()
+    verified_paths = ()
 
     def __repr__(self) -> str:
         reason = " ".join(self.reason.split())

@@ -46,10 +46,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from tamis import compiled
 from tamis.config import GateSettings
 from tamis.corpus import Corpus
 from tamis.errors import BadInput
-from tamis import compiled
 from tamis.loader import SINGLE_KEY_SUFFIX, MembershipFilter, answer_paths
 from tamis.query import ANSWER_PATHS
 
@@ -390,6 +390,10 @@ def verification(member_answers: np.ndarray, sample_answers: np.ndarray, heavy_a
     through every answer path ((keys, paths), `every_path_answers`), and to every heavy key and
     every held-out light key through the service's path. A member is a false negative when any
     path answers it "no"."""
+    if member_answers.shape[1:] != (len(answer_paths()),):  # e.g. cluster workers without numba
+        raise BadInput(f"the verify tasks answered through {member_answers.shape[1:]} paths, this process has "
+                       f"{len(answer_paths())} ({', '.join(answer_paths())}): install the same extras (fast: numba) "
+                       f"where the tasks run as here, so that every path recorded as verified was")
     false_negatives = int(len(member_answers) - np.count_nonzero(member_answers.all(axis=1)))
     paths = PathAgreement(answer_paths(), len(member_answers), len(sample_answers),
                           _differing(member_answers), _differing(sample_answers))

@@ -12,6 +12,7 @@ from golden_build import write_fixed_corpus
 from tamis import compiled
 from tamis.config import GateSettings
 from tamis.corpus import Corpus, KeySet
+from tamis.errors import BadInput
 from tamis.loader import MembershipFilter, answer_paths, open_filter
 from tamis.query import available_paths
 from tamis.verify import (
@@ -25,6 +26,7 @@ from tamis.verify import (
     measure,
     rate_upper,
     refusal_reasons,
+    verification,
 )
 
 # The format's reference artifact holds the members of golden_build's fixed corpus.
@@ -63,6 +65,15 @@ def test_every_member_and_a_sample_of_non_members_go_through_every_answer_path(r
     assert checked.paths.members == len(reference["members"])
     assert checked.paths.nonmembers == len(reference["heldout"].keys)  # below the sample cap: all of them
     assert checked.paths.members_differing == checked.paths.nonmembers_differing == 0
+
+
+def test_answers_through_fewer_paths_than_this_process_has_are_refused(reference):
+    # e.g. cluster workers without numba: the artifact must not record a path they did not run
+    strata = Strata(tau=1, lookups=1, heavy_counts=np.zeros(0, np.int64), tail_lookups=0, tail_max_count=0,
+                    heldout_counts=np.zeros(0, np.int64))
+    fewer = np.ones((3, len(answer_paths()) - 1), dtype=bool)
+    with pytest.raises(BadInput, match="install the same extras"):
+        verification(fewer, fewer[:0], np.zeros(0, bool), np.zeros(0, bool), strata, 0.95)
 
 
 def test_a_single_key_path_that_misses_a_member_is_refused(reference, monkeypatch):
