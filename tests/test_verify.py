@@ -10,6 +10,7 @@ from scipy import stats
 
 from golden_build import write_fixed_corpus
 from tamis import compiled
+from tamis import verify as verify_module
 from tamis.config import GateSettings
 from tamis.corpus import Corpus, KeySet
 from tamis.errors import BadInput
@@ -65,6 +66,24 @@ def test_every_member_and_a_sample_of_non_members_go_through_every_answer_path(r
     assert checked.paths.members == len(reference["members"])
     assert checked.paths.nonmembers == len(reference["heldout"].keys)  # below the sample cap: all of them
     assert checked.paths.members_differing == checked.paths.nonmembers_differing == 0
+
+
+def test_the_numpy_single_key_path_in_a_worker_process_answers_as_in_this_one(reference, monkeypatch, tmp_path):
+    # members and non-members, the empty key, NUL and non-ASCII bytes, answered by the worker process
+    # (the threshold lowered to take it) and in this process: the same (keys, paths) table
+    keys = reference["members"][:300] + reference["heldout"].keys[:700] + [b"", b"\x00x\x00", "h\u00e9ros".encode()]
+    loaded = open_filter(REFERENCE_ARTIFACT)
+    here = verify_module.every_path_answers(loaded, keys)
+    monkeypatch.setattr(verify_module, "WORKER_PROCESS_KEYS", 1)
+    assert np.array_equal(verify_module.every_path_answers(loaded, keys), here)
+    assert here[:300].all() and not here[300:].all()
+    # a worker that cannot answer is an error that says so, never a column of guesses
+    missing = tmp_path / "gone.tamis"
+    missing.write_bytes(REFERENCE_ARTIFACT.read_bytes())
+    opened = open_filter(missing)
+    missing.unlink()
+    with pytest.raises(RuntimeError, match="could not be computed in a worker process"):
+        verify_module.every_path_answers(opened, keys)
 
 
 def test_answers_through_fewer_paths_than_this_process_has_are_refused(reference):
