@@ -53,7 +53,7 @@ from tamis.planning import PlanScores, SettledPlan, settle_plan, training_keys
 from tamis.probes import CapCost, UnlikeKeys, cap_cost, measure_unlike_keys
 from tamis.progress import Progress, StageEvent, no_progress
 from tamis.provenance import build_provenance
-from tamis.query import region_of
+from tamis.query import default_path, region_of
 from tamis.regions import RegionPlan, plan_regions
 from tamis.report_page import REPORT_PAGE_NAME, ScoreSample, write_report_page
 from tamis.trees import Forest, score_batch
@@ -191,7 +191,7 @@ def fill_chunk(chunk: Chunk, filters: list[RegionFilter], hash_seed: int) -> lis
 def answer_chunk(chunk: Chunk, path: Path, every_path: bool) -> np.ndarray:
     """The answers of the artifact at `path`, opened as a service opens it, for one chunk of keys:
     through every answer path (keys, paths), or through `contains_many` only (keys,)."""
-    opened = open_filter(path)
+    opened = open_filter(path, answer_path=default_path())  # not yet verified: the path a service here will take
     return verify.every_path_answers(opened, chunk.items) if every_path else opened.contains_many(chunk.items)
 
 
@@ -315,7 +315,8 @@ def write_candidate(path: Path, spec: dict, candidate: Candidate, config: BuildC
 
 
 @_stage("package")
-def write_package(path: Path, spec: dict, forest, plan, filters, hash_seed: int, provenance: dict, measured: dict | None) -> None:
+def write_package(path: Path, spec: dict, forest, plan, filters, hash_seed: int, provenance: dict, measured: dict | None,
+                  verified_paths: tuple[str, ...]) -> None:
     package_artifact(
         path,
         feature_spec=spec,
@@ -325,6 +326,7 @@ def write_package(path: Path, spec: dict, forest, plan, filters, hash_seed: int,
         hash_seed=hash_seed,
         provenance=provenance,
         measured=measured,
+        verified_paths=verified_paths,
     )
 
 
@@ -510,8 +512,8 @@ def build_flow(config: BuildConfig, progress: Progress | None = None, replace_ne
         with stages.stage("verify"):
             checked = verify_package(stages.chunks("verify"), artifact, corpus, config)
             unlike = probe_unlike(artifact, corpus, config)
-        # the measured figures go into the header; sections are unchanged, so what was verified is what ships
-        write_package(*package_args, {**checked.heldout.as_report(), "target_fpr": config.target.fpr})
+        # the measured figures and the paths verified go into the header; sections are unchanged, so what was verified is what ships
+        write_package(*package_args, {**checked.heldout.as_report(), "target_fpr": config.target.fpr}, checked.paths.query_paths)
         additions.write_members(staging, corpus.members)  # what a rollback to this version reads
 
         with publish.store_lock(store):

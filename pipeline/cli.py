@@ -214,6 +214,12 @@ def unlike_text(unlike: dict | None) -> list[str]:
     ]
 
 
+def unverified_text(agreement: dict) -> list[str]:
+    """A line per query path the verify stage could not check, and what follows for a service."""
+    return [f"  NOT VERIFIED: the {name} path ({why}); services answer this artifact on the "
+            f"{', '.join(agreement['verified_paths'])} path only" for name, why in agreement.get("not_verified", {}).items()]
+
+
 def summary_text(report: dict, folder: Path) -> str:
     from tamis.report_page import size_parts_text
 
@@ -235,6 +241,7 @@ def summary_text(report: dict, folder: Path) -> str:
         *strata_lines(report.get("strata")),
         f"  false negatives {report['false_negatives']}, regions {len(report['regions'])}, "
         f"KL {report['separation']['kl_bits']:.3f} bits, AUC {report['separation']['auc']:.4f}",
+        *unverified_text(report.get("answer_paths", {})),
     ]
     lines += unlike_text(report.get("unlike_keys"))
     if "plain_filter" in report:
@@ -288,24 +295,14 @@ def cmd_build(args) -> int:
     return _run_build(config, replace_newer=args.replace_newer)
 
 
-def _artifact_path(given: str) -> Path:
-    """An artifact file, or a store folder whose version in service is used."""
-    path = Path(given)
-    if path.is_dir():
-        current = publish.current_artifact(path)
-        if current is None:
-            raise BadInput(f"{path} is a folder without a version in service; give an artifact file or a store")
-        return current
-    return path
-
-
 def _open(given: str):
-    """An artifact file, or a store's version in service with the keys added after it."""
+    """An artifact file, or a store's version in service with the keys added after it, opened as a
+    service opens it (`open_filter`: a store is read through its pointer once, and again if a
+    publish pruned that version meanwhile)."""
     from tamis.loader import FilterLoadError, open_filter
 
-    path = Path(given)
     try:
-        return open_filter(path if path.is_dir() else _artifact_path(given))
+        return open_filter(Path(given))
     except FilterLoadError as exc:
         raise BadInput(str(exc)) from None
 
@@ -348,7 +345,8 @@ def cmd_lookup(args) -> int:
     keys = lookup_keys(args.keys, args.key_encoding)
     answers = loaded.contains_many(keys)
     out = sys.stdout.buffer
-    out.writelines(key + (b"\tmaybe\n" if answer else b"\tno\n") for key, answer in zip(keys, answers))
+    # no build takes an empty key as a member (the corpus and `tamis add` refuse it): it surely is not one
+    out.writelines(key + (b"\tmaybe\n" if key and answer else b"\tno\n") for key, answer in zip(keys, answers))
     out.flush()
     return 0
 
@@ -421,8 +419,9 @@ def observed_now_text(report_path: Path) -> str:
                       *observed_lines(sample.served)]) + "\n"
 
 
-def show_text(path: Path, info: dict) -> str:
-    """What `tamis show` prints: the header in words, the regions as a table, the report's summary."""
+def show_text(path: Path, info: dict, in_service: str) -> str:
+    """What `tamis show` prints: the header in words, the regions as a table, the report's summary,
+    the `in_service` line(s)."""
     provenance = info.get("provenance", {})
     forest = info.get("forest", {})
     lines = [
@@ -446,7 +445,7 @@ def show_text(path: Path, info: dict) -> str:
             f"(upper bound {measured['fpr_upper']:.4%} at {measured['confidence']:.0%})"
         )
     report_path = path.with_name(publish.REPORT_NAME)
-    text = "\n".join(lines) + "\n" + report_text(report_path) + service_now_text(path) + observed_now_text(report_path)
+    text = "\n".join(lines) + "\n" + report_text(report_path) + in_service + observed_now_text(report_path)
     from tamis.report_page import REPORT_PAGE_NAME
 
     page = path.with_name(REPORT_PAGE_NAME)
@@ -456,9 +455,12 @@ def show_text(path: Path, info: dict) -> str:
 
 
 def cmd_show(args) -> int:
-    path = _artifact_path(args.artifact)
     loaded = _open(args.artifact)
-    print(show_text(path, loaded.info), end="")
+    if Path(args.artifact).is_dir():  # the store's version in service, as its pointer said when opened
+        in_service = f"in service now: version {loaded.version} of store {loaded.store} (this version)\n"
+    else:
+        in_service = service_now_text(loaded.path)
+    print(show_text(loaded.path, loaded.info, in_service), end="")
     return 0
 
 

@@ -68,17 +68,27 @@ def query_tables(features: int, bias: int, parts: dict[str, np.ndarray]) -> np.n
     return np.concatenate([directory.view(np.uint8), *chunks])
 
 
+def table_part(blob: np.ndarray, name: str) -> np.ndarray:
+    """A view of one part of the query tables (`query_tables`), with its dtype."""
+    index = [part for part, _ in PARTS].index(name)
+    directory = blob[: 8 * _DIRECTORY].view(np.int64)
+    offset, count = (int(v) for v in directory[2 + 2 * index : 4 + 2 * index])
+    dtype = PARTS[index][1]
+    return blob[offset : offset + count * np.dtype(dtype).itemsize].view(dtype)
+
+
 def _numba():
+    """numba and None, or None and why the compiled path is off."""
     if os.environ.get(NUMPY_ONLY_VARIABLE, "0") not in ("", "0"):
-        return None
+        return None, f"{NUMPY_ONLY_VARIABLE} is set"
     try:
         import numba
     except ImportError:
-        return None
-    return numba
+        return None, "numba is not installed (pip install 'tamis[fast]')"
+    return numba, None
 
 
-_NUMBA = _numba()
+_NUMBA, DISABLED_BECAUSE = _numba()
 ENABLED = _NUMBA is not None
 
 if ENABLED:

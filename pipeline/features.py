@@ -34,11 +34,11 @@ same values key by key and must match them bit for bit (tests/test_compiled.py).
 
 from __future__ import annotations
 
+import operator
 from array import array
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
-from itertools import groupby
 
 import numpy as np
 
@@ -188,6 +188,14 @@ def _shift(buckets: int) -> int:
 # One key, in plain Python
 # ---------------------------------------------------------------------------------------------------
 
+# The class byte of the digits, and a table that turns a key's classes into b"d" for a digit and a
+# space for anything else, so that bytes.split() gives its runs of digits.
+_DIGIT_CLASS = bytes([_DIGIT])
+_DIGIT_RUNS = bytes(ord("d") if code == _DIGIT else ord(" ") for code in range(256))
+# Integers below 2^24 are exact in float32 (a 24-bit significand, IEEE 754).
+_FLOAT32_EXACT = 1 << 24
+
+
 def _bucket_of(code: int, shift: int) -> int:
     return ((code * _GOLDEN32) & _MASK32) >> shift
 
@@ -202,22 +210,19 @@ def featurize_one(key: bytes, spec: Mapping | FeatureLayout) -> list[float]:
     classes = key.translate(_CLASS_BYTES)
     folded = key.translate(_FOLD_BYTES)
     counts = [classes.count(c) for c in range(len(CLASSES))]
-    shares = [counts[c] / length for c in _SHARED_CLASSES]  # float64 divisions, as in the batch path
-    runs = [(cls, len(list(run))) for cls, run in groupby(classes)]
-    digit_lengths = [n for cls, n in runs if cls == _DIGIT]
-    first_run, last_run = runs[0], runs[-1]
+    digit_lengths = list(map(len, classes.translate(_DIGIT_RUNS).split()))  # each run of digits, by bytes.split
     affix = _shift(layout.affix_buckets)
-    row[: _FIXED_FEATURES] = [
+    fixed = [
         length,
         *counts,
-        *shares,
+        *array("f", [counts[c] / length for c in _SHARED_CLASSES]).tolist(),  # float64 divisions rounded once, as in the batch path
         length - len(key.translate(None, _VOWELS)),
         len(set(key)),
-        len(runs),
+        1 + sum(map(operator.ne, classes, classes[1:])),  # runs: one more than the class changes
         len(digit_lengths),
         max(digit_lengths, default=0),
-        first_run[1] if first_run[0] == _DIGIT else 0,
-        last_run[1] if last_run[0] == _DIGIT else 0,
+        length - len(classes.lstrip(_DIGIT_CLASS)),
+        length - len(classes.rstrip(_DIGIT_CLASS)),
         classes[0],
         classes[-1],
         folded[0],
@@ -225,6 +230,7 @@ def featurize_one(key: bytes, spec: Mapping | FeatureLayout) -> list[float]:
         _bucket_of(folded[0] << 8 | folded[min(1, length - 1)], affix),
         _bucket_of(folded[max(length - 2, 0)] << 8 | folded[-1], affix),
     ]
+    row[:_FIXED_FEATURES] = map(float, fixed)
     bigram_shift, trigram_shift = _shift(layout.bigram_buckets), _shift(layout.trigram_buckets)
     trigram_base = _FIXED_FEATURES + layout.bigram_buckets
     pairs = [a << 8 | b for a, b in zip(folded, folded[1:])]
@@ -232,7 +238,8 @@ def featurize_one(key: bytes, spec: Mapping | FeatureLayout) -> list[float]:
         row[_FIXED_FEATURES + (((code * _GOLDEN32) & _MASK32) >> bigram_shift)] += 1
     for code, c in zip(pairs, folded[2:]):
         row[trigram_base + ((((code << 8 | c) * _GOLDEN32) & _MASK32) >> trigram_shift)] += 1
-    return array("f", row).tolist()  # each value rounded once to float32, as numpy's cast does
+    # every value but the shares is a count of at most `length`: exact in float32 below 2^24
+    return row if length < _FLOAT32_EXACT else array("f", row).tolist()
 
 
 # ---------------------------------------------------------------------------------------------------

@@ -25,8 +25,9 @@ MAGIC = b"\x89TAMIS\r\n"
 # have to answer its keys). Files of every major in READABLE_MAJORS are still read.
 # 2.1 adds the optional provenance field additions_through (how far the build read the store's
 # addition batches, tamis.additions), which a 2.0 reader ignores.
+# 2.2 adds the optional header field verified_paths (VERIFIED_PATHS_FIELD), which a 2.1 reader ignores.
 FORMAT_MAJOR = 2
-FORMAT_MINOR = 1
+FORMAT_MINOR = 2
 READABLE_MAJORS = (1, 2)
 # magic, major, minor, header length, header checksum, 8 reserved bytes (zero), all little-endian.
 PREAMBLE = struct.Struct("<8sHHIQ8x")
@@ -57,6 +58,10 @@ REGION_MODES = ("bloom", "fuse", "yes", "no")
 REGION_MODES_OF_MAJOR = {1: ("bloom", "yes", "no"), 2: REGION_MODES}
 # Seeds of xxh3 are 64-bit.
 SEED_LIMIT = 2**64
+# The query paths ("numpy", "compiled": tamis.query) through whose batch and single-key calls the
+# build's verify stage answered every member: a loader answers on no other path by default. Written
+# with the measured figures, after verification; absent before 2.2 and before verification.
+VERIFIED_PATHS_FIELD = "verified_paths"
 
 
 def filter_section_name(region: int) -> str:

@@ -8,7 +8,10 @@
 
 A key is answered the way the build inserted it, by the query path (`tamis.query`): features ->
 integer score -> region by the integer boundaries -> that region's answer ("yes", "no", its Bloom
-filter or its binary fuse filter), on the numpy reference or the compiled path (`answer_path`, `using`). Every check
+filter or its binary fuse filter), on the numpy reference or the compiled path (`answer_path`, `using`).
+By default a filter answers on the fastest path here that its build verified (the header's
+`verified_paths`): the compiled path when numba is installed and the build checked every member
+through it, else the numpy reference, saying so in a warning when it falls back. Every check
 runs when the file is opened; any file that cannot be used raises FilterLoadError, and nothing
 stored in it is ever executed.
 
@@ -54,9 +57,10 @@ from tamis.additions import NO_PENDING, BatchError, PendingKeys, folded_through
 from tamis.artifact import ArtifactError, check_artifact, load_artifact
 from tamis.bloom import BloomFilter
 from tamis.features import feature_layout
-from tamis.format import HASHING, HEADER_KIND, REGION_MODES_OF_MAJOR
+from tamis.format import HASHING, HEADER_KIND, REGION_MODES_OF_MAJOR, VERIFIED_PATHS_FIELD
 from tamis.fuse import FuseFilter
 from tamis.query import (
+    ANSWER_PATHS,
     CompiledPath,
     Constant,
     NumpyPath,
@@ -64,6 +68,7 @@ from tamis.query import (
     QueryTables,
     RegionAnswer,
     available_paths,
+    check_path,
     default_path,
     key_bytes,
     pack_batch,
@@ -103,7 +108,7 @@ class AdditionsLoadError(FilterLoadError):
 @dataclass(frozen=True, eq=False)
 class MembershipFilter:
     """An opened artifact, read from `path` in container format `format` ("major.minor"), answering
-    on `answer_path` ("numpy" or "compiled", `tamis.query`)."""
+    on `answer_path` ("numpy" or "compiled", `tamis.query`; see `serving_path`)."""
 
     path: Path
     format: str
@@ -119,6 +124,12 @@ class MembershipFilter:
         hash, measured FPR) plus "format", the container version read from the file, and
         "degraded": False."""
         return {**copy.deepcopy(self.header), "format": self.format, "degraded": False}
+
+    @property
+    def verified_paths(self) -> tuple[str, ...]:
+        """The query paths the build's verification answered every member through (none for an
+        artifact not yet verified or written before format 2.2)."""
+        return tuple(self.header.get(VERIFIED_PATHS_FIELD, ()))
 
     @property
     def forest(self) -> Forest:
@@ -177,9 +188,12 @@ class MembershipFilter:
 
     def using(self, answer_path: str) -> MembershipFilter:
         """This filter answering on `answer_path` ("numpy", the reference, or "compiled", which
-        needs numba); both give the same answers. ValueError for a path this process cannot run."""
-        chosen = dataclasses.replace(self, answer_path=answer_path)
-        chosen._path.warm_up()
+        needs numba); both give the same answers. ValueError for a path this process cannot run.
+        A path the build did not verify (`verified_paths`) answers only when named like this."""
+        on_path = query_path(self.tables, answer_path)
+        chosen = dataclasses.replace(self, answer_path=answer_path, tables=on_path.tables)  # the tables it reads
+        chosen.__dict__["_path"] = on_path
+        on_path.warm_up()
         return chosen
 
     def contains_many(self, keys: Iterable[str | bytes] | np.ndarray | Any) -> np.ndarray:
@@ -233,6 +247,36 @@ def answer_paths() -> tuple[str, ...]:
     return (*paths, *(name + SINGLE_KEY_SUFFIX for name in paths))
 
 
+def serving_path(verified: tuple[str, ...]) -> str:
+    """The path a filter answers on unless told otherwise: the last of `available_paths()` (the
+    compiled path when numba is installed and enabled) that its build verified, else the numpy
+    reference, which every build verifies."""
+    usable = [name for name in available_paths() if name in verified]
+    return usable[-1] if usable else ANSWER_PATHS[0]
+
+
+def _verified_paths(path: Path, header: dict) -> tuple[str, ...]:
+    listed = header.get(VERIFIED_PATHS_FIELD, [])
+    if not isinstance(listed, list) or not all(isinstance(name, str) and name in ANSWER_PATHS for name in listed):
+        raise FilterLoadError(f"{path}: header field {VERIFIED_PATHS_FIELD!r} must list answer paths of "
+                              f"{list(ANSWER_PATHS)}, got {listed!r}")
+    return tuple(listed)
+
+
+def _chosen_path(path: Path, header: dict, answer_path: str | None) -> str:
+    """`answer_path` when given, else `serving_path` of the build's verified paths, with a warning
+    when that is not the fastest path this process has."""
+    verified = _verified_paths(path, header)
+    if answer_path is not None:
+        return answer_path
+    chosen = serving_path(verified)
+    if chosen != default_path():
+        LOG.warning(f"{path}: answering on the {chosen} path, not the {default_path()} path, which its build did not "
+                    f"verify (verified: {', '.join(verified) or 'none'}); a build where numba is installed (pip "
+                    f"install 'tamis[fast]') verifies both, or pass answer_path to choose")
+    return chosen
+
+
 def _figure(measured: Any, name: str) -> float | None:
     value = measured.get(name) if isinstance(measured, dict) else None
     return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else None
@@ -252,6 +296,7 @@ class DegradedFilter:
 
     degraded = True
     fpr = fpr_upper = target = built_at = None
+    verified_paths = ()
 
     def __repr__(self) -> str:
         reason = " ".join(self.reason.split())
@@ -319,7 +364,7 @@ def _region(path: Path, index: int, entry: Any, sections: dict, seed: int, major
         raise FilterLoadError(f"{path}: region {index}: {error}") from error
 
 
-def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict, answer_path: str) -> MembershipFilter:
+def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict, answer_path: str | None) -> MembershipFilter:
     if header.get("kind") != HEADER_KIND:
         raise FilterLoadError(f"{path}: artifact kind is {header.get('kind')!r}, not {HEADER_KIND!r}")
     hashing = _field(path, header, "hash", dict)
@@ -345,12 +390,13 @@ def _parse(path: Path, version: tuple[int, int], header: dict, sections: dict, a
         )
     regions = tuple(_region(path, i, entry, sections, seed, version[0]) for i, entry in enumerate(entries))
     tables = QueryTables(layout, forest, boundaries, regions, seed)
-    return MembershipFilter(path, f"{version[0]}.{version[1]}", header, tables, answer_path).using(answer_path)
+    chosen = _chosen_path(path, header, answer_path)
+    return MembershipFilter(path, f"{version[0]}.{version[1]}", header, tables, chosen).using(chosen)
 
 
-def _open_checked(path: Path, answer_path: str, data: bytes | None = None) -> MembershipFilter:
+def _open_checked(path: Path, answer_path: str | None, data: bytes | None = None) -> MembershipFilter:
     """The artifact at `path` (its bytes `data` when already read), checked, parsed and answering
-    on `answer_path`.
+    on `answer_path` (None: `serving_path`).
 
     Every failure to open is a FilterLoadError: the container's own errors, the header's, and
     anything else a hostile file might still provoke, named with its type (the checks above are
@@ -416,7 +462,7 @@ def _pending_after(folder: Path, pending: PendingKeys, through: int) -> PendingK
                                  f"while it stays, under on_error='maybe')") from error
 
 
-def open_in_service(folder: Path, answer_path: str) -> InService:
+def open_in_service(folder: Path, answer_path: str | None) -> InService:
     """The version in service of the store `folder`, read as one (`tamis.store.read_in_service`),
     with the keys added after its build; FilterLoadError when there is none or it cannot be used."""
     try:
@@ -452,7 +498,7 @@ class ServedFilter:
         self._traffic = traffic
         self.store = folder
         self._on_error = on_error
-        self._answer_path = answer_path or default_path()
+        self._answer_path = answer_path
         self._swap = threading.Lock()  # one refresh at a time
         self._closed = threading.Event()
         try:
@@ -490,6 +536,17 @@ class ServedFilter:
                 return False
             self._served = latest
             return True
+
+    def using(self, answer_path: str) -> ServedFilter:
+        """Answer on `answer_path` from now on, this version and the ones refreshes swap in (as
+        `MembershipFilter.using`); returns this handle. ValueError for a path this process cannot run."""
+        with self._swap:
+            served = self._current()
+            check_path(answer_path)
+            if not served.filter.degraded:
+                self._served = dataclasses.replace(served, filter=served.filter.using(answer_path))
+            self._answer_path = answer_path
+        return self
 
     def _serves_build_in_service(self, served: InService) -> bool:
         """True when the store's version in service is the very build served (its number and its
@@ -582,6 +639,11 @@ class ServedFilter:
     # What is served: cheap reads of the version served.
 
     @property
+    def path(self) -> Path:
+        """The artifact file of the version served (the store folder when none could be opened)."""
+        return self._current().filter.path
+
+    @property
     def version(self) -> int | None:
         return self._served.version
 
@@ -637,9 +699,10 @@ def open_filter(
     `observed()`, the rate the service really gets, and a warning is logged when it rises above
     the certified bound.
 
-    answer_path: "numpy" or "compiled" (`tamis.query`); by default the compiled path when numba is
-    installed, the numpy path otherwise. Both give the same answers; `MembershipFilter.using`
-    switches an opened filter.
+    answer_path: "numpy" or "compiled" (`tamis.query`); by default `serving_path`: the compiled path
+    when numba is installed and the build verified that path (the header's `verified_paths`), the
+    numpy path otherwise (with a warning when numba is installed). Both give the same answers;
+    `using` switches an opened filter or store handle.
 
     on_error="raise" (the default): raise FilterLoadError if the artifact is unusable.
     on_error="maybe": answer with a `DegradedFilter` instead, which answers True for every key, after
@@ -657,7 +720,7 @@ def open_filter(
     if refresh_seconds is not None or sample_folder is not None or observe:
         raise ValueError(f"refresh_seconds, sample_folder and observe apply to a store folder; {path} is not one")
     try:
-        return _open_checked(path, answer_path or default_path())
+        return _open_checked(path, answer_path)
     except FilterLoadError as error:
         if on_error == "raise":
             raise

@@ -14,6 +14,7 @@ Header (the container's meta map, see `tamis.artifact`; FORMAT.md specifies ever
     hash          {function, positions, bit_order, seed}: how keys become Bloom bit positions
                   (a fuse region derives its slots from the same xxh3_128 value, `tamis.fuse`)
     measured      the held-out figures once verification has run, None before
+    verified_paths  the query paths verification answered every member through (from 2.2), once it has run
 
 A key is answered by: features -> integer score -> region by the boundaries -> that region's filter.
 """
@@ -28,7 +29,7 @@ import numpy as np
 from tamis.artifact import write_artifact
 from tamis.bloom import check_seed
 from tamis.filters import RegionFilter
-from tamis.format import HASHING, HEADER_KIND, filter_section_name
+from tamis.format import HASHING, HEADER_KIND, VERIFIED_PATHS_FIELD, filter_section_name
 from tamis.trees import Forest
 
 INT64_RANGE = (-(2**63), 2**63 - 1)
@@ -85,8 +86,10 @@ def package_artifact(
     hash_seed: int,
     provenance: Mapping[str, Any],
     measured: Mapping[str, Any] | None = None,
+    verified_paths: Sequence[str] = (),
 ) -> None:
-    """Write the artifact for these parts to path (atomically; equal inputs give equal bytes)."""
+    """Write the artifact for these parts to path (atomically; equal inputs give equal bytes).
+    `verified_paths`: the query paths the verify stage answered every member through (none before it runs)."""
     listed = _boundary_list(boundaries)
     if len(region_filters) != len(listed) + 1:
         raise ValueError(f"{len(listed)} boundaries make {len(listed) + 1} regions, got {len(region_filters)} filters")
@@ -106,4 +109,6 @@ def package_artifact(
         "hash": {**HASHING, "seed": hash_seed},
         "measured": None if measured is None else dict(measured),
     }
+    if verified_paths:
+        header[VERIFIED_PATHS_FIELD] = list(verified_paths)
     write_artifact(path, header, sections)

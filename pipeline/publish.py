@@ -299,12 +299,17 @@ def refuse_staging(store: Path, staging: Path, build_id: str) -> Path:
 
 
 def require_store(store: Path) -> None:
-    """Raise StoreError unless `store` is an existing folder: the commands that read or change a
-    store (`tamis versions`, `tamis rollback`) must not take a mistyped path for an empty store."""
+    """Raise StoreError unless `store` is a store folder, one that a build, a publish or `tamis add`
+    has left its marks in: the commands that read or change a store (`tamis versions`, `tamis
+    rollback`) must not take a mistyped path or another folder for an empty store, nor write in it."""
     if not store.exists():
         raise StoreError(f"no store at {store}: no such folder; check the path (a store is the folder a build publishes into)")
     if not store.is_dir():
         raise StoreError(f"store {store} is a file, not a folder; give the path of a store folder")
+    marks = (POINTER_NAME, LEGACY_POINTER_NAME, LOCK_NAME, REFUSED_NAME, additions.FOLDER_NAME)
+    if not any((store / mark).exists() for mark in marks) and not published_versions(store):
+        raise StoreError(f"{store} is not a tamis store: it holds no version, no {POINTER_NAME}, {LOCK_NAME}, "
+                         f"{REFUSED_NAME}/ or {additions.FOLDER_NAME}/; check the path (a store is the folder a build publishes into)")
 
 
 @dataclass(frozen=True)

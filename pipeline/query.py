@@ -28,6 +28,7 @@ answered by one jitted function (`tamis.compiled._region_hit`). A new filter kin
 from __future__ import annotations
 
 import bisect
+import dataclasses
 import sys
 from collections.abc import Iterable
 from dataclasses import dataclass
@@ -249,8 +250,27 @@ class QueryTables:
     @cached_property
     def kernel_tables(self) -> np.ndarray:
         """Everything the compiled path's kernels read, as one array (see `tamis.compiled`); it
-        holds its own copy of the filter words."""
+        holds its own copy of the filter words (see `sharing_kernel_words`)."""
         return _kernel_tables(self)
+
+    @cached_property
+    def sharing_kernel_words(self) -> QueryTables:
+        """These tables with every filter's words read from `kernel_tables`, so that the words are
+        held once: a filter that answers on the compiled path keeps these, and the file's bytes the
+        regions were read from can go. Both paths answer from them alike."""
+        blob = _kernel_tables(self)
+        words, first, regions = compiled.table_part(blob, "words"), 0, []
+        for region in self.regions:
+            count = len(_kernel_region(region)[1])
+            if count:
+                view = words[first : first + count]
+                view.flags.writeable = False
+                region = dataclasses.replace(region, words=view)
+            regions.append(region)
+            first += count
+        shared = QueryTables(self.layout, self.forest, self.boundaries, tuple(regions), self.seed)
+        shared.__dict__.update(kernel_tables=blob, sharing_kernel_words=shared)  # the cached properties' slots
+        return shared
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -375,11 +395,16 @@ def default_path() -> str:
     return available_paths()[-1]
 
 
-def query_path(tables: QueryTables, name: str) -> NumpyPath | CompiledPath:
-    """The one switch between the two implementations of the query path."""
+def check_path(name: str) -> None:
+    """ValueError unless this process can run the answer path `name`."""
     if name not in available_paths():
         raise ValueError(
             f"answer path {name!r} is not available here (available: {list(available_paths())}; "
             f"the compiled path needs numba, pip install 'tamis[fast]', and {compiled.NUMPY_ONLY_VARIABLE} unset)"
         )
-    return CompiledPath(tables) if name == "compiled" else NumpyPath(tables)
+
+
+def query_path(tables: QueryTables, name: str) -> NumpyPath | CompiledPath:
+    """The one switch between the two implementations of the query path."""
+    check_path(name)
+    return CompiledPath(tables.sharing_kernel_words) if name == "compiled" else NumpyPath(tables)

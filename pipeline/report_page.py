@@ -274,6 +274,7 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("held-out effective sample", f"{held['effective_sample']:,.1f}"),
         ("expected rate on validation lookups", _percent(report["expected_fpr"])),
         ("false negatives", report["false_negatives"]),
+        ("answer paths verified (every member)", verified_paths_text(report.get("answer_paths", {}))),
         ("artifact bytes", _count(size["total_bytes"])),
         ("model / filters / header and layout bytes", size_parts_text(size)),
         ("bits per member", f"{size['bits_per_member']:.2f}"),
@@ -284,6 +285,13 @@ def key_numbers(report: dict) -> list[tuple[str, object]]:
         ("KL divergence / AUC", f"{report['separation']['kl_bits']:.3f} bits / {report['separation']['auc']:.4f}"),
         ("model", f"{report['model']['trees']} trees"),
     ]
+
+
+def verified_paths_text(agreement: dict) -> str:
+    """The query paths the verify stage checked every member through, and each it could not, with why."""
+    verified = ", ".join(agreement.get("verified_paths", []))
+    skipped = "; ".join(f"NOT {name}: {why}" for name, why in agreement.get("not_verified", {}).items())
+    return f"{verified}; {skipped}" if skipped else verified
 
 
 def size_parts_text(size: dict) -> str:

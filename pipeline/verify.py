@@ -41,15 +41,21 @@ Gate rules (each refusal starts with the rule's name; the thresholds are `config
 from __future__ import annotations
 
 import math
+import os
+import subprocess
+import sys
+import tempfile
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
 
+from tamis import compiled
 from tamis.config import GateSettings
 from tamis.corpus import Corpus
 from tamis.errors import BadInput
-from tamis.loader import MembershipFilter, answer_paths
+from tamis.loader import SINGLE_KEY_SUFFIX, MembershipFilter, answer_paths
+from tamis.query import ANSWER_PATHS, pack_batch
 
 
 def gamma_upper(total, variance, max_weight, confidence: float):
@@ -386,9 +392,51 @@ def path_sample(keys: list[bytes]) -> list[bytes]:
     return keys[:: max(1, -(-len(keys) // PATH_SAMPLE_KEYS))]
 
 
+# The numpy single-key path is plain Python, a key at a time, and holds the interpreter's lock, so
+# beside the build's other threads it runs alone: for at least this many keys it runs in a Python
+# process of its own (the same code on the same file, `WORKER`), beside the other paths.
+WORKER_PROCESS_KEYS = 50_000
+NUMPY_SINGLE = ANSWER_PATHS[0] + SINGLE_KEY_SUFFIX
+# argv: artifact, answer path, a file of the keys (int64 count, int64 offsets, the bytes); writes
+# one byte an answer.
+WORKER = """
+import sys
+import numpy as np
+from tamis.loader import open_filter
+raw = open(sys.argv[3], "rb").read()
+count = int(np.frombuffer(raw, np.int64, 1)[0])
+bounds = np.frombuffer(raw, np.int64, count + 1, 8).tolist()
+data = raw[8 * (count + 2):]
+keys = [data[a:b] for a, b in zip(bounds, bounds[1:])]
+answers = open_filter(sys.argv[1], answer_path="numpy").answers_through(sys.argv[2], keys)
+sys.stdout.buffer.write(answers.astype(np.uint8).tobytes())
+"""
+
+
+def _in_worker(loaded: MembershipFilter, path: str, keys: list[bytes], folder: str) -> subprocess.Popen:
+    """Start a Python process answering `keys` through the answer path `path` of `loaded`'s file."""
+    packed = pack_batch(keys)
+    listing = os.path.join(folder, "keys")
+    with open(listing, "wb") as handle:
+        handle.write(np.int64(len(keys)).tobytes() + packed.offsets.astype(np.int64).tobytes() + packed.buffer)
+    return subprocess.Popen([sys.executable, "-c", WORKER, str(loaded.path), path, listing],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+
+
 def every_path_answers(loaded: MembershipFilter, keys: list[bytes]) -> np.ndarray:
-    """Each key's answer through each answer path of the loader, (keys, paths) in `answer_paths()` order."""
-    return np.column_stack([loaded.answers_through(path, keys) for path in answer_paths()]).reshape(len(keys), -1)
+    """Each key's answer through each answer path of the loader, (keys, paths) in `answer_paths()`
+    order; the numpy single-key path in a worker process for many keys (WORKER_PROCESS_KEYS)."""
+    if len(keys) < WORKER_PROCESS_KEYS:
+        return np.column_stack([loaded.answers_through(path, keys) for path in answer_paths()]).reshape(len(keys), -1)
+    with tempfile.TemporaryDirectory(prefix="tamis-verify-") as folder:
+        worker = _in_worker(loaded, NUMPY_SINGLE, keys, folder)
+        answers = {path: loaded.answers_through(path, keys) for path in answer_paths() if path != NUMPY_SINGLE}
+        out, err = worker.communicate()
+    if worker.returncode != 0 or len(out) != len(keys):
+        raise RuntimeError(f"the {NUMPY_SINGLE} answers of {loaded.path} could not be computed in a worker process "
+                           f"(exit {worker.returncode}): {err.decode(errors='replace')[-2000:]}")
+    answers[NUMPY_SINGLE] = np.frombuffer(out, dtype=np.uint8).astype(bool)
+    return np.column_stack([answers[path] for path in answer_paths()]).reshape(len(keys), -1)
 
 
 @dataclass(frozen=True)
@@ -402,9 +450,22 @@ class PathAgreement:
     members_differing: int
     nonmembers_differing: int
 
+    @property
+    def query_paths(self) -> tuple[str, ...]:
+        """The query paths ("numpy", "compiled") whose batch and single-key calls were both checked:
+        what the artifact records as verified (`tamis.format.VERIFIED_PATHS_FIELD`)."""
+        return tuple(name for name in ANSWER_PATHS if name in self.paths and name + SINGLE_KEY_SUFFIX in self.paths)
+
+    @property
+    def not_verified(self) -> dict[str, str]:
+        """Each query path left unchecked, and why (a service with numba answers such an artifact on
+        the numpy path)."""
+        return {name: compiled.DISABLED_BECAUSE or "not run" for name in ANSWER_PATHS if name not in self.query_paths}
+
     def as_report(self) -> dict:
         return {"paths": list(self.paths), "members": self.members, "nonmembers": self.nonmembers,
-                "members_differing": self.members_differing, "nonmembers_differing": self.nonmembers_differing}
+                "members_differing": self.members_differing, "nonmembers_differing": self.nonmembers_differing,
+                "verified_paths": list(self.query_paths), "not_verified": self.not_verified}
 
 
 def _differing(answers: np.ndarray) -> int:
@@ -452,6 +513,10 @@ def verification(member_answers: np.ndarray, sample_answers: np.ndarray, heavy_a
     every held-out light key through the service's path. A member is a false negative when any
     path answers it "no". With `heldout_regions` (each held-out key's region of `regions`), the
     held-out rate is also measured region by region."""
+    if member_answers.shape[1:] != (len(answer_paths()),):  # e.g. cluster workers without numba
+        raise BadInput(f"the verify tasks answered through {member_answers.shape[1:]} paths, this process has "
+                       f"{len(answer_paths())} ({', '.join(answer_paths())}): install the same extras (fast: numba) "
+                       f"where the tasks run as here, so that every path recorded as verified was")
     false_negatives = int(len(member_answers) - np.count_nonzero(member_answers.all(axis=1)))
     paths = PathAgreement(answer_paths(), len(member_answers), len(sample_answers),
                           _differing(member_answers), _differing(sample_answers))

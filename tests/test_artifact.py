@@ -88,7 +88,7 @@ def test_round_trip_gives_equal_read_only_views(written):
 def test_layout_matches_the_documented_format(written):
     raw = written.read_bytes()
     magic, major, minor, length, header_sum = struct.unpack_from("<8sHHIQ", raw, 0)
-    assert magic == b"\x89TAMIS\r\n" and (major, minor) == (2, 1)
+    assert magic == b"\x89TAMIS\r\n" and (major, minor) == (2, 2)
     assert raw[24:32] == bytes(8)
     assert xxhash.xxh3_64_intdigest(raw[32 : 32 + length]) == header_sum
     table = msgpack.unpackb(raw[32 : 32 + length])["sections"]
@@ -111,9 +111,9 @@ def test_big_endian_input_is_stored_little_endian(tmp_path):
     assert sections["x"].dtype.str == "<u4" and sections["x"].tolist() == [1, 2]
 
 
-# xxh3-64 of the file written from HEADER and sample_sections(), recorded when format 2.1 was fixed
-# (the bytes of 1.0 but for the major and minor versions; 873d6656f25fc8af as 2.0).
-GOLDEN_DIGEST = "e9422242a9f29bc3"
+# xxh3-64 of the file written from HEADER and sample_sections(), recorded when format 2.2 was fixed
+# (the bytes of 1.0 but for the major and minor versions; e9422242a9f29bc3 as 2.1, 873d6656f25fc8af as 2.0).
+GOLDEN_DIGEST = "8a6a022d9c1c494b"
 
 
 def test_writes_are_deterministic_and_the_format_is_pinned(tmp_path):

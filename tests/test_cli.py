@@ -5,9 +5,11 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from tamis import cli, publish
+from tamis import store as store_module
 from tamis.version import tool_version
 
 
@@ -55,10 +57,22 @@ def test_rollback_of_a_missing_path_creates_nothing(capsys, tmp_path):
 
 
 def test_rollback_of_a_store_with_nothing_in_service_says_so(capsys, tmp_path):
-    (tmp_path / "empty").mkdir()
-    code, _, err = run(capsys, "rollback", str(tmp_path / "empty"))
+    with publish.store_lock(tmp_path / "store"):  # a store whose builds were all refused holds only its lock
+        pass
+    code, _, err = run(capsys, "rollback", str(tmp_path / "store"))
     assert code == cli.EXIT_BAD_INPUT
     assert "no version is in service" in err and "None" not in err
+    assert run(capsys, "versions", str(tmp_path / "store"))[:2] == (0, f"{tmp_path / 'store'}: no published versions\n")
+
+
+@pytest.mark.parametrize("command", ["versions", "rollback"])
+def test_a_folder_that_is_no_store_is_bad_input_and_stays_untouched(capsys, tmp_path, command):
+    (tmp_path / "photos").mkdir()
+    (tmp_path / "photos" / "cat.jpg").write_bytes(b"meow")
+    code, out, err = run(capsys, command, str(tmp_path / "photos"))
+    assert code == cli.EXIT_BAD_INPUT and out == ""
+    assert err.startswith(f"tamis: {tmp_path / 'photos'} is not a tamis store") and "check the path" in err
+    assert sorted(p.name for p in (tmp_path / "photos").iterdir()) == ["cat.jpg"]  # no .lock left behind
 
 
 def test_rollback_and_back_again_with_to(capsys, tmp_path):
@@ -109,3 +123,37 @@ def test_help_says_the_target_defaults_to_one_percent(capsys):
         code, out, _ = run(capsys, command, "--help")
         assert code == 0
         assert "0.01 is 1% (default: the config's target.fpr, else 0.01, i.e. 1%)" in " ".join(out.split())
+
+
+def reference_store(store: Path) -> Path:
+    """A store whose version 1 is the format-2.0 reference artifact (forest, Bloom and fuse regions)."""
+    staging = publish.new_staging(store, "reference")
+    (staging / publish.ARTIFACT_NAME).write_bytes((Path(__file__).parent / "data" / "format-2.0.tamis").read_bytes())
+    with publish.store_lock(store):
+        publish.publish_staging(store, staging, keep=10)
+    return store
+
+
+def test_show_and_lookup_open_a_store_as_a_service_does_reading_its_pointer_once(capsys, tmp_path, monkeypatch):
+    store = reference_store(tmp_path / "store")
+    reads = []
+    read_pointer = store_module._read_pointer
+    monkeypatch.setattr(store_module, "_read_pointer", lambda *args: reads.append(args) or read_pointer(*args))
+    code, out, _ = run(capsys, "show", str(store))
+    assert code == 0 and out.startswith(f"artifact {store / '1' / publish.ARTIFACT_NAME} (")
+    assert f"in service now: version 1 of store {store} (this version)" in out
+    assert [name for _, name in reads] == [store_module.POINTER_NAME]
+    reads.clear()
+    code, out, _ = run(capsys, "lookup", str(store), "frost_wyrm_1984")
+    assert code == 0 and out.startswith("frost_wyrm_1984\t") and len(reads) == 1
+
+
+def test_lookup_answers_no_to_the_empty_key_which_no_build_holds(capsys, tmp_path, monkeypatch):
+    # no build can hold the empty key as a member (the corpus and `tamis add` refuse it), so `tamis
+    # lookup` says no even where the filter would answer it "maybe" (here every key does)
+    from tamis.loader import MembershipFilter
+
+    store = reference_store(tmp_path / "store")
+    monkeypatch.setattr(MembershipFilter, "answer_packed", lambda self, packed: np.ones(len(packed), dtype=bool))
+    code, out, _ = run(capsys, "lookup", str(store), "", "x")
+    assert code == 0 and out == "\tno\nx\tmaybe\n"

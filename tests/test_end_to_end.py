@@ -9,7 +9,9 @@ from pathlib import Path
 
 import pytest
 
-from tamis import publish
+from tamis import compiled, publish
+from tamis.loader import open_filter
+from tamis.query import available_paths, default_path
 
 # Small enough for the suite. Lookup counts are heavy-tailed, so 24,000 held-out keys carry the
 # information of only about 500 unweighted draws: a 5% target can be bounded at that size, 1% not.
@@ -60,8 +62,9 @@ _FRESH = """
 import sys
 from tamis.loader import open_filter
 members = open(sys.argv[2], encoding="utf-8").read().splitlines()
-answers = open_filter(sys.argv[1]).contains_many(members)
-print(int(answers.sum()), len(members))
+opened = open_filter(sys.argv[1])
+answers = opened.contains_many(members)
+print(int(answers.sum()), len(members), opened.answer_path, ",".join(opened.verified_paths))
 """
 
 
@@ -69,8 +72,24 @@ def test_a_fresh_process_reloads_the_artifact_and_finds_every_member(demo):
     artifact = demo / "store" / "1" / publish.ARTIFACT_NAME
     done = subprocess.run([sys.executable, "-c", _FRESH, str(artifact), str(demo / "banned_handles.txt")],
                           capture_output=True, text=True, check=True)
-    found, total = map(int, done.stdout.split())
-    assert found == total == MEMBERS
+    found, total, answer_path, verified = done.stdout.split()
+    assert int(found) == int(total) == MEMBERS
+    # the build verified every path this machine has, said so in the header, and a service answers on the fastest
+    assert verified.split(",") == list(available_paths()) == _report(demo)["answer_paths"]["verified_paths"]
+    assert answer_path == default_path()
+
+
+def test_a_build_without_the_compiled_path_says_so_and_its_services_stay_on_numpy(tmp_path):
+    if not compiled.ENABLED:
+        pytest.skip("numba is not installed here: the demo build above is the build without it")
+    done = tamis("demo", "--dir", str(tmp_path), "--members", "1500", "--non-members", "40000", "--target-fpr", "0.1",
+                 env={compiled.NUMPY_ONLY_VARIABLE: "1"})
+    assert done.returncode == 0, done.stderr
+    assert "NOT VERIFIED: the compiled path (TAMIS_NUMPY_ONLY is set)" in done.stdout
+    report = json.loads((tmp_path / "store" / "1" / publish.REPORT_NAME).read_text())
+    assert report["answer_paths"]["verified_paths"] == ["numpy"]
+    opened = open_filter(tmp_path / "store" / "1" / publish.ARTIFACT_NAME)
+    assert (opened.verified_paths, opened.answer_path) == (("numpy",), "numpy")
 
 
 def test_lookup_answers_every_member_maybe_in_input_order(demo):

@@ -3,6 +3,7 @@ planned regions, backup filters, package, open; then every way a file can be unu
 
 from __future__ import annotations
 
+import logging
 import math
 import os
 import struct
@@ -14,15 +15,17 @@ import msgpack
 import numpy as np
 import pytest
 
+from tamis import compiled
 from tamis.artifact import read_artifact, write_artifact
 from tamis.sizing import bloom_fpr
+from tamis.format import FORMAT_MINOR
 from tamis.features import default_feature_spec, featurize
 from tamis.filters import build_filters
 from tamis.loader import FilterLoadError, open_filter
 from tamis.booster import compile_booster
 from tamis.package import package_artifact
 from tamis.config import CorpusSettings
-from tamis.query import KEY_BATCH_FORMS, region_of
+from tamis.query import KEY_BATCH_FORMS, default_path, region_of
 from tamis.regions import RegionSettings, plan_regions
 from tamis.trees import score_batch
 from tamis_testing import REFUSE_IMPORTS
@@ -212,7 +215,7 @@ def test_key_types(built):
 def test_info_is_the_header(built):
     loaded = open_filter(built["path"])
     info = loaded.info
-    assert info["format"] == "2.1"
+    assert info["format"] == f"2.{FORMAT_MINOR}"
     assert info["provenance"] == PROVENANCE
     assert info["feature_spec"] == built["spec"]
     assert info["boundaries"] == built["plan"].boundaries.tolist()
@@ -288,7 +291,7 @@ def test_bad_magic_and_unknown_major_are_refused(built, tmp_path):
         open_filter(bad)
     raw[8:10] = struct.pack("<H", 3)
     bad.write_bytes(bytes(raw))
-    with pytest.raises(FilterLoadError, match="format 3.1 not supported"):
+    with pytest.raises(FilterLoadError, match=f"format 3.{FORMAT_MINOR} not supported"):
         open_filter(bad)
     with pytest.raises(FilterLoadError, match="cannot read artifact"):
         open_filter(tmp_path / "absent")
@@ -336,6 +339,8 @@ def _first_fuse(header) -> dict:
         (lambda h, s: _first_fuse(h).update(segment_length=3), "power of two"),
         (lambda h, s: _first_fuse(h).update(segment_count=_first_fuse(h)["segment_count"] + 1), "uint64 words"),
         (lambda h, s: _first_fuse(h).pop("seed"), "needs integer 'hashes', 'width', 'seed'"),
+        (lambda h, s: h.update(verified_paths=["numpy", "gpu"]), "'verified_paths' must list answer paths"),
+        (lambda h, s: h.update(verified_paths="numpy"), "'verified_paths' must list answer paths"),
     ],
 )
 def test_inconsistent_headers_are_refused(built, tmp_path, edit, message):
@@ -350,6 +355,29 @@ def test_unknown_header_fields_and_sections_are_ignored(built, tmp_path):
 
     loaded = open_filter(rewritten(built, tmp_path, add))
     assert loaded.contains_many(built["members"]).all()
+
+
+# --- the answer paths a build verified ------------------------------------------------------------
+
+
+@pytest.mark.parametrize("verified", [None, ["numpy"], ["numpy", "compiled"]])
+def test_a_filter_serves_by_default_only_on_a_path_its_build_verified(built, tmp_path, caplog, verified):
+    edit = (lambda h, s: None) if verified is None else (lambda h, s: h.update(verified_paths=verified))
+    path = rewritten(built, tmp_path, edit)
+    caplog.set_level(logging.WARNING, logger="tamis.loader")
+    loaded = open_filter(path)
+    listed = tuple(verified or ())
+    assert loaded.verified_paths == listed
+    expected = "compiled" if compiled.ENABLED and "compiled" in listed else "numpy"
+    assert loaded.answer_path == expected
+    # a fall back from the compiled path this process could run is said, once, naming why
+    fell_back = compiled.ENABLED and expected == "numpy"
+    assert [r.levelno for r in caplog.records] == ([logging.WARNING] if fell_back else [])
+    if fell_back:
+        assert "did not verify" in caplog.text and "pip install 'tamis[fast]'" in caplog.text
+    assert loaded.contains_many(built["members"]).all()
+    # a path named by the caller is the caller's choice, verified or not
+    assert open_filter(path, answer_path=default_path()).answer_path == default_path()
 
 
 # --- polars columns, packed keys ------------------------------------------------------------------

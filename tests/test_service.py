@@ -56,6 +56,18 @@ def test_a_store_folder_serves_its_version_in_service(versions, tmp_path):
         assert served.contains_many(versions["others"]).mean() < 0.1
 
 
+def test_the_store_handle_switches_answer_path_for_every_version_it_serves(versions, tmp_path):
+    publish_artifact(tmp_path, versions["a"])
+    with open_filter(tmp_path) as served:
+        assert served.using("numpy") is served and served._current().filter.answer_path == "numpy"
+        assert served.contains_many(versions["a_members"]).all() and all(served.contains(k) for k in versions["a_members"][:50])
+        publish_artifact(tmp_path, versions["b"])
+        assert served.refresh() and served._current().filter.answer_path == "numpy"
+        assert served.contains_many(versions["b_members"]).all()
+        with pytest.raises(ValueError, match="not available here"):
+            served.using("gpu")
+
+
 def test_refresh_swaps_to_a_newly_published_version(versions, tmp_path):
     publish_artifact(tmp_path, versions["a"])
     served = open_filter(tmp_path)

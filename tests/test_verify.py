@@ -9,9 +9,13 @@ import pytest
 from scipy import stats
 
 from golden_build import write_fixed_corpus
+from tamis import compiled
+from tamis import verify as verify_module
 from tamis.config import GateSettings
 from tamis.corpus import Corpus, KeySet
+from tamis.errors import BadInput
 from tamis.loader import MembershipFilter, answer_paths, open_filter
+from tamis.query import available_paths
 from tamis.verify import (
     Strata,
     aim_fpr,
@@ -23,6 +27,7 @@ from tamis.verify import (
     measure,
     rate_upper,
     refusal_reasons,
+    verification,
 )
 
 # The format's reference artifact holds the members of golden_build's fixed corpus.
@@ -55,9 +60,39 @@ def test_every_member_and_a_sample_of_non_members_go_through_every_answer_path(r
     checked, reasons = _verdict(reference["members"], reference["heldout"])
     assert checked.false_negatives == 0 and reasons == []
     assert checked.paths.paths == answer_paths() and len(answer_paths()) >= 2
+    # what the artifact will record as verified, and what was not with why
+    assert checked.paths.query_paths == available_paths()
+    assert checked.paths.not_verified == ({} if compiled.ENABLED else {"compiled": compiled.DISABLED_BECAUSE})
     assert checked.paths.members == len(reference["members"])
     assert checked.paths.nonmembers == len(reference["heldout"].keys)  # below the sample cap: all of them
     assert checked.paths.members_differing == checked.paths.nonmembers_differing == 0
+
+
+def test_the_numpy_single_key_path_in_a_worker_process_answers_as_in_this_one(reference, monkeypatch, tmp_path):
+    # members and non-members, the empty key, NUL and non-ASCII bytes, answered by the worker process
+    # (the threshold lowered to take it) and in this process: the same (keys, paths) table
+    keys = reference["members"][:300] + reference["heldout"].keys[:700] + [b"", b"\x00x\x00", "h\u00e9ros".encode()]
+    loaded = open_filter(REFERENCE_ARTIFACT)
+    here = verify_module.every_path_answers(loaded, keys)
+    monkeypatch.setattr(verify_module, "WORKER_PROCESS_KEYS", 1)
+    assert np.array_equal(verify_module.every_path_answers(loaded, keys), here)
+    assert here[:300].all() and not here[300:].all()
+    # a worker that cannot answer is an error that says so, never a column of guesses
+    missing = tmp_path / "gone.tamis"
+    missing.write_bytes(REFERENCE_ARTIFACT.read_bytes())
+    opened = open_filter(missing)
+    missing.unlink()
+    with pytest.raises(RuntimeError, match="could not be computed in a worker process"):
+        verify_module.every_path_answers(opened, keys)
+
+
+def test_answers_through_fewer_paths_than_this_process_has_are_refused(reference):
+    # e.g. cluster workers without numba: the artifact must not record a path they did not run
+    strata = Strata(tau=1, lookups=1, heavy_counts=np.zeros(0, np.int64), tail_lookups=0, tail_max_count=0,
+                    heldout_counts=np.zeros(0, np.int64))
+    fewer = np.ones((3, len(answer_paths()) - 1), dtype=bool)
+    with pytest.raises(BadInput, match="install the same extras"):
+        verification(fewer, fewer[:0], np.zeros(0, bool), np.zeros(0, bool), strata, 0.95)
 
 
 def test_a_single_key_path_that_misses_a_member_is_refused(reference, monkeypatch):
