@@ -685,8 +685,9 @@ def read_lookup_sample(folder: Path, settings: CorpusSettings, members: set[byte
                        f"{settings.sample_days:g} days of the build; give a folder the service writes into now, or raise it")
     lengths = np.fromiter(map(len, sample.keys), dtype=np.int64, count=len(sample.keys))
     usable = lengths <= settings.max_key_bytes
-    if settings.key_encoding == "utf-8":
-        usable &= np.fromiter((_is_utf8(k) for k in sample.keys), dtype=bool, count=len(sample.keys))
+    if settings.key_encoding == "utf-8" and _first_invalid_utf8(sample.keys) is not None:
+        # one decode of them all finds none in the usual case; only then is each key asked
+        usable &= np.fromiter((_first_invalid_utf8([k]) is None for k in sample.keys), dtype=bool, count=len(sample.keys))
     member = np.fromiter((k in members for k in sample.keys), dtype=bool, count=len(sample.keys))
     keep = usable & ~member
     keys = [k for k, kept in zip(sample.keys, keep) if kept]
@@ -696,14 +697,6 @@ def read_lookup_sample(folder: Path, settings: CorpusSettings, members: set[byte
         "unusable_keys": int((~usable).sum()), "unusable_lookups": int(sample.counts[~usable & ~member].sum()),
     }
     return RawSource(keys, sample.counts[keep], len(keys)), report
-
-
-def _is_utf8(key: bytes) -> bool:
-    try:
-        key.decode("utf-8")
-    except UnicodeDecodeError:
-        return False
-    return True
 
 
 def conflict_error(labelled: int, example: bytes) -> BadInput:

@@ -483,3 +483,21 @@ def test_partitions_that_cannot_be_used_are_named(tmp_path):
     (paths["members"] / "part-1.txt").write_bytes(b"fine\n\nempty line above\n")
     with pytest.raises(BadInput, match=r"part-1.txt: line 2"):
         load_corpus(paths["members"], paths["lookups"], SETTINGS)
+
+
+def test_a_lookup_sample_leaves_out_members_and_keys_no_build_can_hold(tmp_path):
+    """Lookups of members are the service's, not label errors; keys over max_key_bytes or not
+    UTF-8 can never be members: all are left out of the non-members, and counted."""
+    import numpy as np
+
+    from tamis.corpus import read_lookup_sample
+    from tamis.traffic import Served, TrafficRecorder
+
+    keys = [b"player", b"player", b"banned", b"\xff\xfe", b"x" * (SETTINGS.max_key_bytes + 1), b"other"]
+    recorder = TrafficRecorder(tmp_path, 1.0)
+    recorder.record(Served("b", 1, 0.01, 0.02, 0.02), keys, np.zeros(len(keys), dtype=bool))
+    recorder.flush()
+    source, report = read_lookup_sample(tmp_path, SETTINGS, {b"banned"})
+    assert dict(zip(source.keys, source.counts.tolist())) == {b"player": 2, b"other": 1}
+    assert (report["member_keys"], report["member_lookups"]) == (1, 1)
+    assert (report["unusable_keys"], report["unusable_lookups"]) == (2, 2)
